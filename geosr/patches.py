@@ -1,0 +1,230 @@
+"""The feature operator, patch extraction and overlap-averaged reassembly.
+
+Geometry
+--------
+A *patch* is a ``3s x 3s`` block of high-res pixels made of the 3 x 3
+low-res cells around a *centre* cell ``c = (i, j)``: high-res rows
+``s*(i-1) ... s*(i+2) - 1`` and the same for columns. There is a patch at
+every low-res cell, so each high-res pixel is covered by exactly nine
+patches, and the reassembled detail is their plain average.
+
+Features
+--------
+The low-res feature of a centre is built from the bicubic interpolation
+``y_l`` of the low-res image: first and second derivative filters along both
+axes with taps spaced by the scale (first ``[1, 0, .., 0, -1]`` of length
+``s + 1``, second ``[1, 0, .., -2, .., 0, 1] / 2`` of length ``2s + 1``),
+sampled over the patch and concatenated into ``4 * (3s)**2`` *raw* values.
+Every step of that chain is linear and shift-equivariant by one low-res
+pixel, so the raw feature of a centre is a fixed linear map of the low-res
+window of radius :data:`FEATURE_RADIUS` around it. That map is computed once
+(:func:`raw_feature_kernel`) and the PCA projection is folded into it, so at
+run time the features are a small bank of correlations evaluated on the
+low-res grid only.
+
+Derivatives annihilate constants, hence the features of ``c * x + b`` are
+``c`` times those of ``x``: the property that makes the whole method
+positively homogeneous and shift-equivariant in value.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+
+from .resample import UPSCALE_MARGIN, upscale_valid
+
+__all__ = [
+    "FEATURE_RADIUS",
+    "derivative_filters",
+    "raw_feature_kernel",
+    "lowres_windows",
+    "raw_features",
+    "detail_patches",
+    "overlap_average",
+    "pca_basis",
+]
+
+#: Low-res pixels of context one centre's feature needs on each side:
+#: 1 (the patch) + 1 (derivative taps, at most s high-res pixels) + 2 (bicubic).
+FEATURE_RADIUS = 4
+
+#: Centres needed around a window so that each of its cells has all nine patches.
+PATCH_REACH = 1
+
+
+def derivative_filters(scale):
+    """The four 1-D derivative filters and their first offsets.
+
+    Returns a list of ``(axis, taps, start)``: the filtered value at high-res
+    pixel ``x`` is ``sum_t taps[t] * y[x + start + t]`` along ``axis``
+    (0 = rows, 1 = columns). Taps are centred at index ``len(taps) // 2``.
+    """
+    s = int(scale)
+    first = np.zeros(s + 1)
+    first[0], first[-1] = 1.0, -1.0
+    second = np.zeros(2 * s + 1)
+    second[0], second[s], second[-1] = 0.5, -1.0, 0.5
+    filters = []
+    for taps in (first, second):
+        for axis in (1, 0):
+            filters.append((axis, taps, -(len(taps) // 2)))
+    return filters
+
+
+def _correlate_valid(y, taps, start, axis, margin):
+    """Correlate along image ``axis`` (0 rows, 1 columns) in valid mode.
+
+    Drops ``margin`` pixels of context on each side of both image axes.
+    """
+    ax = -2 if axis == 0 else -1
+    other = -1 if ax == -2 else -2
+    n = y.shape[ax] - 2 * margin
+    acc = None
+    for t, w in enumerate(taps):
+        if w == 0.0:
+            continue
+        lo = margin + start + t
+        sl = [slice(None)] * y.ndim
+        sl[ax] = slice(lo, lo + n)
+        term = y[tuple(sl)] * w
+        acc = term if acc is None else acc + term
+    sl = [slice(None)] * y.ndim
+    sl[other] = slice(margin, y.shape[other] - margin)
+    return acc[tuple(sl)]
+
+
+@lru_cache(maxsize=8)
+def _raw_feature_kernel(scale):
+    s = scale
+    r = FEATURE_RADIUS
+    size = 2 * r + 1
+    impulses = np.eye(size * size).reshape(size * size, size, size)
+    # Bicubic interpolation of cells -2..2 around the centre (5s high-res pixels).
+    y = upscale_valid(impulses, s, UPSCALE_MARGIN)
+    # Each derivative keeps the 3s x 3s patch, consuming s pixels per side.
+    maps = [_correlate_valid(y, taps, start, axis, s) for axis, taps, start in derivative_filters(s)]
+    raw = np.concatenate([m.reshape(size * size, -1) for m in maps], axis=1)
+    return raw.T.copy()  # (4 * (3s)**2, (2r + 1)**2)
+
+
+def raw_feature_kernel(scale):
+    """Linear map from a low-res window to the raw feature of its centre.
+
+    Returns
+    -------
+    ndarray, shape (4 * (3*scale)**2, (2*FEATURE_RADIUS + 1)**2), float64
+        ``raw = kernel @ window.ravel()`` for the low-res window of radius
+        :data:`FEATURE_RADIUS` centred on the patch centre.
+    """
+    return _raw_feature_kernel(int(scale)).copy()
+
+
+def lowres_windows(padded, radius=FEATURE_RADIUS):
+    """All ``(2r+1) x (2r+1)`` windows of a padded low-res array, as rows.
+
+    Parameters
+    ----------
+    padded : ndarray, shape (h + 2r, w + 2r)
+
+    Returns
+    -------
+    ndarray, shape (h * w, (2r+1)**2)
+        A copy in the dtype of ``padded``; row ``i * w + j`` is the window
+        centred on interior pixel ``(i, j)``.
+    """
+    size = 2 * radius + 1
+    view = sliding_window_view(padded, (size, size))
+    return view.reshape(-1, size * size)
+
+
+def raw_features(padded, scale):
+    """Raw (un-projected) features of every interior centre of a padded array.
+
+    Returns ``(h * w, 4 * (3s)**2)``; used for training and for tests, the
+    run-time path uses the projected kernel directly.
+    """
+    k = raw_feature_kernel(scale).astype(padded.dtype, copy=False)
+    return lowres_windows(padded) @ k.T
+
+
+def detail_patches(detail, scale, rows, cols):
+    """High-res patches of a detail image at the given centres.
+
+    Parameters
+    ----------
+    detail : ndarray, shape (s*h, s*w)
+        High-res image (``y_h - y_l``) aligned with a low-res grid of h x w.
+    rows, cols : ndarray of int
+        Centre cells; each must have its 3 x 3 neighbourhood inside the grid.
+
+    Returns
+    -------
+    ndarray, shape (len(rows), (3s)**2)
+        Row-major patches.
+    """
+    s = int(scale)
+    view = sliding_window_view(detail, (3 * s, 3 * s))[::s, ::s]
+    return view[np.asarray(rows) - 1, np.asarray(cols) - 1].reshape(len(rows), -1)
+
+
+def overlap_average(patches, scale):
+    """Average the nine patches covering each cell of a window.
+
+    Parameters
+    ----------
+    patches : ndarray, shape (h + 2, w + 2, (3s)**2)
+        Patches for the centres ``-1 .. h`` by ``-1 .. w`` of an ``h x w``
+        window (one ring of centres outside it).
+
+    Returns
+    -------
+    ndarray, shape (s*h, s*w)
+        The mean of the nine contributions at every high-res pixel.
+    """
+    s = int(scale)
+    hp, wp = patches.shape[:2]
+    h, w = hp - 2, wp - 2
+    p = patches.reshape(hp, wp, 3, s, 3, s)
+    out = np.zeros((h, s, w, s), dtype=patches.dtype)
+    for a in range(3):
+        for b in range(3):
+            # Centre index ci (0..h+1) covers window cell ci - 2 + a.
+            out += p[2 - a : 2 - a + h, 2 - b : 2 - b + w, a, :, b, :].transpose(0, 2, 1, 3)
+    out *= patches.dtype.type(1.0 / 9.0)
+    return out.reshape(h * s, w * s)
+
+
+def pca_basis(covariance, energy=0.999):
+    """Principal axes keeping a fraction of the energy (uncentred PCA).
+
+    The features are not centred: centring would break the homogeneity of
+    the method, and derivative features have mean close to zero anyway.
+
+    Parameters
+    ----------
+    covariance : ndarray, shape (n, n)
+        Second-moment matrix ``X^T X`` of the raw features.
+    energy : float
+        Fraction of the trace to keep, in (0, 1].
+
+    Returns
+    -------
+    basis : ndarray, shape (n, d)
+        Orthonormal columns, strongest first.
+    eigenvalues : ndarray, shape (d,)
+    """
+    vals, vecs = np.linalg.eigh((covariance + covariance.T) / 2.0)
+    order = np.argsort(vals)[::-1]
+    vals = np.clip(vals[order], 0.0, None)
+    vecs = vecs[:, order]
+    total = vals.sum()
+    if total <= 0:
+        return vecs[:, :1], vals[:1]
+    d = int(np.searchsorted(np.cumsum(vals) / total, energy) + 1)
+    d = min(max(d, 1), len(vals))
+    # Fix the sign of each axis so that trained models repeat exactly.
+    signs = np.sign(vecs[np.argmax(np.abs(vecs[:, :d]), axis=0), np.arange(d)])
+    return vecs[:, :d] * signs, vals[:d]
