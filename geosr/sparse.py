@@ -17,10 +17,20 @@ Orthogonal Matching Pursuit"): with ``G = D^T D`` and ``alpha0 = D^T x``,
 step ``k`` picks the atom of largest ``|alpha|``, ``alpha = alpha0 - G_I gamma``
 being the correlations of the current residual, grows the Cholesky factor of
 ``G_II`` by one row and solves for ``gamma``. No residual vector is ever
-formed. The loop runs in a compiled (numba) kernel, one signal after the
-other inside blocks of signals, and blocks run on a few threads (the kernel
-releases the GIL); everything for one signal (its 1000 correlations, the
-small Cholesky factor) stays in the first-level cache.
+formed. ``alpha0`` comes from one BLAS product per sub-block of 256
+signals; the selection loop runs in a compiled (numba) kernel, one signal
+after the other, and blocks of signals run on a few threads (the kernel
+releases the GIL, BLAS is held to one thread meanwhile).
+
+Codes do not depend on the batch. A BLAS product rounds a row differently
+depending on where it sits in the matrix, so its correlations only
+*screen*: the atoms whose screened ``|alpha|`` lies within a rounding bound
+of the maximum are re-evaluated with a dot product in one fixed order, and
+only those values choose the atom, decide the stops and enter the
+coefficients; the Gram matrix is computed in a fixed order too. The code of
+a signal is therefore the same bits whatever the chunk, block, thread count
+or BLAS threading that coded it (chunked magnification equals whole-image
+magnification exactly, not just to rounding).
 
 Selections and coefficients are those of scikit-learn's
 ``orthogonal_mp_gram`` (same argmax of ``|alpha|``, same stopping when an
@@ -48,6 +58,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import threading
 from concurrent.futures import ThreadPoolExecutor
 from numbers import Integral, Real
 
@@ -72,6 +83,30 @@ BLOCK_SIGNALS = 16384
 COHERENCE_LIMIT = 0.99
 
 _BLAS = ThreadpoolController()
+_BLAS_LOCK = threading.Lock()
+_BLAS_STATE = {"users": 0, "limiter": None}
+
+
+@contextlib.contextmanager
+def _one_blas_thread():
+    """BLAS limited to one thread while any caller is inside (thread-safe).
+
+    The limit is process-wide; callers on several threads (dask workers)
+    share one limit, set by the first to enter and lifted by the last to
+    leave, so the original setting is always restored.
+    """
+    with _BLAS_LOCK:
+        if _BLAS_STATE["users"] == 0:
+            _BLAS_STATE["limiter"] = _BLAS.limit(limits=1, user_api="blas")
+        _BLAS_STATE["users"] += 1
+    try:
+        yield
+    finally:
+        with _BLAS_LOCK:
+            _BLAS_STATE["users"] -= 1
+            if _BLAS_STATE["users"] == 0:
+                _BLAS_STATE["limiter"].restore_original_limits()
+                _BLAS_STATE["limiter"] = None
 
 #: Tolerance on the column norms of a dictionary given to OMP (a sanity
 #: check against unnormalised dictionaries; float32 normalisation is ~1e-7).
@@ -477,7 +512,7 @@ def _omp_run(D, X, n_nonzero, tol, G, n_threads, block=BLOCK_SIGNALS):
 
     # Parallelism comes from the blocks; each small product runs on one BLAS
     # thread (BLAS threading costs more than it brings on these sizes).
-    limit = _BLAS.limit(limits=1, user_api="blas") if n_sig > SUB_BLOCK else contextlib.nullcontext()
+    limit = _one_blas_thread() if n_sig > SUB_BLOCK else contextlib.nullcontext()
     with limit:
         if n_threads == 1 or len(starts) == 1:
             for s0 in starts:

@@ -233,6 +233,37 @@ def test_blocks_and_threads_do_not_change_results(monkeypatch):
         np.testing.assert_array_equal(coef, ref_coef)
 
 
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_codes_do_not_depend_on_the_batch(dtype):
+    # A signal's code is the same bits wherever it sits in the batch (the
+    # property that makes chunked magnification equal whole-image output).
+    D, X = _gaussian(30, 500, 1200, seed=15, dtype=dtype)
+    idx, coef = sparse.omp_codes(D, X, 3)
+    for start, stop in [(1, 2), (37, 300), (255, 1200), (600, 857)]:
+        part_idx, part_coef = sparse.omp_codes(D, X[:, start:stop], 3, n_threads=1)
+        np.testing.assert_array_equal(part_idx, idx[start:stop])
+        np.testing.assert_array_equal(part_coef, coef[start:stop])
+
+
+def test_concurrent_callers_share_and_restore_the_blas_limit():
+    # Callers on several threads (as dask workers are) get the same codes, and
+    # the process-wide BLAS thread count is back to its setting afterwards.
+    from concurrent.futures import ThreadPoolExecutor
+
+    from threadpoolctl import threadpool_info
+
+    before = [lib["num_threads"] for lib in threadpool_info() if lib["user_api"] == "blas"]
+    D, X = _gaussian(30, 300, 2000, seed=14, dtype=np.float32)
+    ref = sparse.omp_codes(D, X, 3)
+    with ThreadPoolExecutor(4) as pool:
+        outs = list(pool.map(lambda _: sparse.omp_codes(D, X, 3, n_threads=2), range(8)))
+    for idx, coef in outs:
+        np.testing.assert_array_equal(idx, ref[0])
+        np.testing.assert_array_equal(coef, ref[1])
+    after = [lib["num_threads"] for lib in threadpool_info() if lib["user_api"] == "blas"]
+    assert after == before
+
+
 def test_non_contiguous_input():
     D, X = _gaussian(30, 300, 400, seed=13)
     ref = sparse.batch_omp(D, X[:, ::2], 3).toarray()
