@@ -1,0 +1,150 @@
+"""A small progress bar on stderr: blocks done / total, rate and time left.
+
+The scheduling layer drives it from the main process as each block's result
+arrives, so it works the same with local threads or processes and with a
+dask.distributed cluster. On a terminal it redraws one line; when stderr is
+redirected to a file it writes a line at every tenth of the work (and at
+least every 30 seconds), so logs stay short.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+
+__all__ = ["Progress", "format_duration"]
+
+
+def format_duration(seconds):
+    """Format a duration as ``"42 s"``, ``"3 min 05 s"`` or ``"2 h 07 min"``.
+
+    Parameters
+    ----------
+    seconds : float
+
+    Returns
+    -------
+    str
+    """
+    if seconds != seconds or seconds == float("inf"):  # NaN or infinite
+        return "?"
+    seconds = max(0, int(round(seconds)))
+    if seconds < 60:
+        return f"{seconds} s"
+    minutes, sec = divmod(seconds, 60)
+    if minutes < 60:
+        return f"{minutes} min {sec:02d} s"
+    hours, minutes = divmod(minutes, 60)
+    return f"{hours} h {minutes:02d} min"
+
+
+class Progress:
+    """Progress of a run of ``total`` units (blocks), printed to a stream.
+
+    Parameters
+    ----------
+    total : int
+        Number of units the run will complete.
+    label : str
+        What is running, printed in front (e.g. ``"magnify"``).
+    unit : str
+        Name of a unit, plural (``"blocks"``).
+    quiet : bool
+        Print nothing at all.
+    stream : file-like, optional
+        Defaults to ``sys.stderr`` (looked up when the bar is made).
+    min_interval : float
+        Seconds between two redraws on a terminal.
+
+    Examples
+    --------
+    >>> with Progress(4, "magnify", quiet=True) as bar:
+    ...     for _ in range(4):
+    ...         bar.update()
+    >>> bar.done
+    4
+    """
+
+    def __init__(self, total, label="geosr", unit="blocks", *, quiet=False, stream=None,
+                 min_interval=0.2):
+        self.total = max(0, int(total))
+        self.label = str(label)
+        self.unit = str(unit)
+        self.quiet = bool(quiet)
+        self.stream = sys.stderr if stream is None else stream
+        self.min_interval = float(min_interval)
+        self.done = 0
+        self.start = time.monotonic()
+        self._last_draw = 0.0
+        self._last_tenth = -1
+        self._closed = False
+        isatty = getattr(self.stream, "isatty", None)
+        try:
+            self._tty = bool(isatty()) if isatty else False
+        except (ValueError, OSError):
+            self._tty = False
+
+    # ---------------------------------------------------------------- text
+    def text(self, now=None):
+        """The status line: ``"magnify: 3/12 blocks (25%), 1.5 blocks/s, 6 s left"``."""
+        now = time.monotonic() if now is None else now
+        elapsed = max(now - self.start, 1e-9)
+        pct = 100.0 * self.done / self.total if self.total else 100.0
+        rate = self.done / elapsed
+        parts = [f"{self.label}: {self.done}/{self.total} {self.unit} ({pct:.0f}%)"]
+        if self.done:
+            parts.append(f"{rate:.2f} {self.unit}/s" if rate < 10 else f"{rate:.0f} {self.unit}/s")
+            if self.done < self.total:
+                parts.append(f"{format_duration((self.total - self.done) / rate)} left")
+            else:
+                parts.append(f"{format_duration(elapsed)} in all")
+        return ", ".join(parts)
+
+    def _write(self, text, end):
+        try:
+            self.stream.write(text + end)
+            self.stream.flush()
+        except (ValueError, OSError):  # a closed or broken stream must not fail the run
+            self.quiet = True
+
+    def _draw(self, force=False):
+        if self.quiet:
+            return
+        now = time.monotonic()
+        if self._tty:
+            if force or now - self._last_draw >= self.min_interval:
+                self._write("\r" + self.text(now) + "\x1b[K", "")
+                self._last_draw = now
+            return
+        tenth = (10 * self.done) // self.total if self.total else 10
+        if force or tenth > self._last_tenth or now - self._last_draw >= 30.0:
+            self._write(self.text(now), "\n")
+            self._last_tenth = tenth
+            self._last_draw = now
+
+    # -------------------------------------------------------------- update
+    def update(self, n=1):
+        """Record ``n`` more finished units and redraw when due."""
+        self.done = min(self.total, self.done + int(n)) if self.total else self.done + int(n)
+        final = self.done >= self.total
+        self._draw(force=final and self._tty)
+
+    def close(self):
+        """Finish the line (on a terminal) and stop drawing."""
+        if self._closed:
+            return
+        self._closed = True
+        if self.quiet:
+            return
+        if self._tty:
+            self._write("\r" + self.text() + "\x1b[K", "\n")
+        elif self._last_tenth < 10 or self.done < self.total:
+            self._write(self.text(), "\n")
+
+    def __enter__(self):
+        self._draw(force=True)
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False

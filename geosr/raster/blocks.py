@@ -1,0 +1,200 @@
+"""Reading one block with its halo and magnifying it: the unit of work.
+
+Every task opens its own rasterio handle (GDAL handles are not thread-safe),
+reads the block plus its halo, extends the halo symmetrically where it
+leaves the raster, hands each band to its model's ``magnify_block`` and
+converts the result to the output pixel type. Only the finished block goes
+back to the writer, so memory is bounded by the block size.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import warnings
+
+import numpy as np
+import rasterio
+from rasterio.errors import NotGeoreferencedWarning, RasterioError
+
+from ..errors import InputError
+from .masks import MaskMode, nearest_magnify, to_output_dtype
+from .windows import Block, halo_read, pad_symmetric
+
+try:  # GDAL errors surface as these when rasterio does not wrap them
+    from rasterio._err import CPLE_BaseError
+except ImportError:  # pragma: no cover - older rasterio
+    CPLE_BaseError = RasterioError
+
+__all__ = ["BlockPlan", "BlockResult", "read_block", "magnify_one_block", "READ_ERRORS"]
+
+#: Exceptions that mean "GDAL could not read this window".
+READ_ERRORS = (RasterioError, CPLE_BaseError, OSError)
+
+
+@dataclasses.dataclass(frozen=True)
+class BlockPlan:
+    """Everything a block task needs except the block and the models.
+
+    Attributes
+    ----------
+    path : str
+        Source raster (absolute, or a GDAL path the workers can open).
+    height, width : int
+        Source size in pixels.
+    bands : tuple of int
+        Source bands to read, 1-based, in output order.
+    roles : tuple of int
+        For each band the index of its model in the model list, or -1 to
+        magnify it by nearest neighbour (alpha bands).
+    halo : int
+        Context per side in source pixels (at least every model's radius).
+    scale : int
+    dtype : str
+        Output pixel type.
+    mode : MaskMode
+    nodata : float or None
+    masked : bool
+        Whether the source has mask bands worth reading.
+    consistency, ensemble : bool
+    read_retries : int
+        Extra attempts (each with a fresh handle) when GDAL fails to read.
+    """
+
+    path: str
+    height: int
+    width: int
+    bands: tuple
+    roles: tuple
+    halo: int
+    scale: int
+    dtype: str
+    mode: MaskMode
+    nodata: object
+    masked: bool
+    consistency: bool = False
+    ensemble: bool = False
+    read_retries: int = 2
+
+
+@dataclasses.dataclass
+class BlockResult:
+    """A finished block.
+
+    Attributes
+    ----------
+    block : Block
+    data : ndarray, shape (bands, scale*height, scale*width), output dtype
+    mask : ndarray of uint8, shape (scale*height, scale*width), or None
+        0 for invalid, 255 for valid; only for ``MaskMode.MASK``.
+    n_valid : int
+        Valid output pixels over all bands.
+    """
+
+    block: Block
+    data: np.ndarray
+    mask: object
+    n_valid: int
+
+
+def read_block(path, bands, block, halo, height, width, *, masked=True, retries=2):
+    """Read a block and its halo; extend the halo symmetrically outside the raster.
+
+    Parameters
+    ----------
+    path : str
+    bands : sequence of int
+        1-based band indexes.
+    block : Block
+    halo : int
+    height, width : int
+        Size of the raster.
+    masked : bool
+        Read GDAL's mask bands (nodata, per-dataset mask, alpha).
+    retries : int
+        Extra attempts with a fresh handle after a read error.
+
+    Returns
+    -------
+    data : ndarray, shape (len(bands), block.height + 2*halo, block.width + 2*halo)
+        The source pixel type.
+    valid : ndarray of bool, same shape
+        Measured pixels: mask band non-zero and, for floats, finite.
+
+    Raises
+    ------
+    InputError
+        When GDAL cannot read the window after every attempt.
+    """
+    window, pads = halo_read(block, halo, height, width)
+    last = None
+    for _ in range(int(retries) + 1):
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", NotGeoreferencedWarning)
+                with rasterio.open(path, "r") as ds:
+                    data = ds.read(list(bands), window=window)
+                    masks = ds.read_masks(list(bands), window=window) if masked else None
+            break
+        except READ_ERRORS as exc:
+            last = exc
+    else:
+        r0, c0 = int(window.row_off), int(window.col_off)
+        raise InputError(
+            f"The source raster {path!r} must be readable, got a read error in rows "
+            f"{r0}-{r0 + int(window.height) - 1}, columns {c0}-{c0 + int(window.width) - 1} "
+            f"(damaged or truncated file?): {last}"
+        ) from None
+    valid = masks > 0 if masks is not None else np.ones(data.shape, dtype=bool)
+    if data.dtype.kind == "f":
+        valid &= np.isfinite(data)
+    return pad_symmetric(data, pads), pad_symmetric(valid, pads)
+
+
+def magnify_one_block(plan, block, models):
+    """Read, magnify and convert one block.
+
+    Parameters
+    ----------
+    plan : BlockPlan
+    block : Block
+    models : sequence of model objects
+        Objects with ``magnify_block(block, halo, valid, *, consistency,
+        ensemble)``, indexed by ``plan.roles``.
+
+    Returns
+    -------
+    BlockResult
+    """
+    s, h = plan.scale, plan.halo
+    data, valid = read_block(plan.path, plan.bands, block, h, plan.height, plan.width,
+                             masked=plan.masked, retries=plan.read_retries)
+    inner = (slice(h, h + block.height), slice(h, h + block.width))
+    out_dtype = np.dtype(plan.dtype)
+    nodata = plan.nodata if plan.mode is MaskMode.NODATA else None
+    out = np.empty((len(plan.bands), s * block.height, s * block.width), dtype=out_dtype)
+    all_ok = np.ones(out.shape[1:], dtype=bool)
+    n_valid = 0
+    for i, role in enumerate(plan.roles):
+        v_in = valid[i][inner]
+        ok = nearest_magnify(v_in, s)
+        if role < 0:
+            values = nearest_magnify(data[i][inner], s).astype(np.float64)
+            ok = np.ones_like(ok)
+        elif not v_in.any():
+            values = np.zeros(ok.shape)
+        else:
+            v = None if valid[i].all() else valid[i]
+            values = models[role].magnify_block(
+                data[i], h, v, consistency=plan.consistency, ensemble=plan.ensemble
+            )
+        if role < 0:
+            band, ok = values.astype(out_dtype), ok
+        else:
+            band, ok = to_output_dtype(values, ok, out_dtype, nodata)
+            all_ok &= ok
+        out[i] = band
+        n_valid += int(ok.sum())
+    mask = None
+    if plan.mode is MaskMode.MASK:
+        mask = np.where(all_ok, 255, 0).astype(np.uint8)
+    return BlockResult(block, out, mask, n_valid)

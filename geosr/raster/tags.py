@@ -1,0 +1,110 @@
+"""Provenance tags and the caution every magnified raster carries.
+
+Written in the default tag domain of the output:
+
+``GEOSR_SYNTHESIZED``  ``yes``: fine detail is synthesized, not measured
+``GEOSR_METHOD``       ``sparse`` or ``anchored``
+``GEOSR_SCALE``        the integer magnification
+``GEOSR_MODEL_SHA256`` checksum of the model arrays; with per-band models a
+                       comma-separated list in band order (each band also
+                       carries its own in its band tags)
+``GEOSR_VERSION``      the geosr version
+``GEOSR_CREATED``      ISO 8601 time in UTC
+``GEOSR_SOURCE``       the source's file name
+``TIFFTAG_IMAGEDESCRIPTION`` the caution in words
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+
+from .._version import __version__
+
+__all__ = [
+    "CAUTION",
+    "utc_now",
+    "image_description",
+    "provenance_tags",
+    "carried_tags",
+    "carried_band_tags",
+]
+
+#: The caution of the design contract, in words, for tags, reports and logs.
+CAUTION = (
+    "Magnified detail is synthesized by a statistical model. It is not a measurement: "
+    "do not use it for measuring distances or areas, legal or property boundaries, damage "
+    "or insurance evidence, or safety-critical decisions. Defer to licensed practice "
+    "(surveyors, photogrammetrists) and to the rules of your agency and local codes for "
+    "derived imagery."
+)
+
+
+def utc_now():
+    """The current time in UTC as ISO 8601, to the second: ``2024-05-01T12:00:00Z``."""
+    now = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0)
+    return now.isoformat().replace("+00:00", "Z")
+
+
+def image_description(scale, method, source_name):
+    """The ``TIFFTAG_IMAGEDESCRIPTION`` text: what was done, then the caution."""
+    return (
+        f"Magnified x{scale} from {source_name} by geosr {__version__} ({method} method). "
+        f"Fine detail is synthesized, not measured. {CAUTION}"
+    )
+
+
+def provenance_tags(*, scale, method, model_sha256, source_name, created=None,
+                    consistency=False, ensemble=False):
+    """The dataset-level ``GEOSR_*`` tags and the image description.
+
+    Parameters
+    ----------
+    scale : int
+    method : str
+    model_sha256 : str or sequence of str
+        One checksum, or one per magnified band.
+    source_name : str
+    created : str, optional
+        ISO 8601 UTC time; now by default.
+    consistency, ensemble : bool
+
+    Returns
+    -------
+    dict of str
+    """
+    if not isinstance(model_sha256, str):
+        shas = list(model_sha256)
+        model_sha256 = shas[0] if len(set(shas)) == 1 else ",".join(shas)
+    return {
+        "GEOSR_SYNTHESIZED": "yes",
+        "GEOSR_METHOD": str(method),
+        "GEOSR_SCALE": str(int(scale)),
+        "GEOSR_MODEL_SHA256": str(model_sha256),
+        "GEOSR_VERSION": __version__,
+        "GEOSR_CREATED": created or utc_now(),
+        "GEOSR_SOURCE": str(source_name),
+        "GEOSR_CONSISTENCY": "yes" if consistency else "no",
+        "GEOSR_ENSEMBLE": "yes" if ensemble else "no",
+        "TIFFTAG_IMAGEDESCRIPTION": image_description(scale, method, source_name),
+        "TIFFTAG_SOFTWARE": f"geosr {__version__}",
+    }
+
+
+def carried_tags(tags):
+    """Source dataset tags worth keeping (AREA_OR_POINT, acquisition metadata).
+
+    TIFF baseline tags describe the file, not the scene, and earlier
+    ``GEOSR_*`` tags would describe another run: both are dropped.
+    """
+    return {
+        k: v for k, v in tags.items()
+        if not k.startswith("TIFFTAG_") and not k.startswith("GEOSR_")
+    }
+
+
+def carried_band_tags(tags):
+    """Source band tags worth keeping: statistics change, so they are dropped."""
+    return {
+        k: v for k, v in tags.items()
+        if not k.startswith("STATISTICS_") and not k.startswith("GEOSR_")
+    }

@@ -1,0 +1,397 @@
+"""The scheduling layer: run block tasks locally or on a dask.distributed cluster.
+
+One call, :func:`run_tasks`, runs ``func(job, shared)`` for every job and
+hands each result to ``consume`` in the main process as soon as it arrives
+(completion order), so a single writer can write finished blocks while
+others are computed and memory stays bounded by the number of blocks in
+flight, not by the scene.
+
+Where the tasks run (``scheduler``):
+
+``None`` / ``"threads"``
+    dask's local threaded scheduler (the default; numpy and GDAL release
+    the GIL). ``workers`` sets the thread count.
+``"processes"``
+    dask's local multiprocessing scheduler over a pool of spawned worker
+    processes; the shared object (the models) is sent once per process.
+``"synchronous"``
+    one task after the other in the calling thread (debugging).
+``"tcp://host:port"`` (or a ``distributed.Client``)
+    an existing dask.distributed cluster. The source raster must be
+    reachable by the workers under the same path (a shared file system or
+    a GDAL URL such as ``/vsis3/...``); the output is written by the calling
+    process only.
+``workers=N`` with no ``scheduler``
+    starts a dask.distributed ``LocalCluster`` of N single-threaded worker
+    processes on the loopback interface for the run, and closes it after.
+
+Failed tasks are retried ``retries`` times (on a cluster also after a
+worker dies); a task that fails for good stops the run with its error.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import contextlib
+import dataclasses
+import logging
+import multiprocessing
+import os
+import pickle
+import uuid
+
+from threadpoolctl import threadpool_limits
+
+from .errors import GeosrError, ParameterError, RunError
+
+__all__ = ["SchedulerSpec", "resolve_scheduler", "run_tasks", "default_workers"]
+
+_LOCAL_KINDS = ("threads", "processes", "synchronous")
+
+#: Objects shared by every task of a local run, by token (worker processes
+#: get theirs from the pool initializer).
+_SHARED = {}
+
+
+def default_workers():
+    """Number of local workers: the CPUs this process may use."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+@dataclasses.dataclass(frozen=True)
+class SchedulerSpec:
+    """Where a run's tasks go (see the module docstring).
+
+    Attributes
+    ----------
+    kind : {"threads", "processes", "synchronous", "local-cluster", "distributed"}
+    workers : int or None
+        Local threads or processes, or LocalCluster worker processes.
+    address : str or None
+        Scheduler address of an existing cluster.
+    client : distributed.Client or None
+        An existing client to use.
+    """
+
+    kind: str
+    workers: object = None
+    address: object = None
+    client: object = None
+
+    def describe(self):
+        if self.kind == "distributed":
+            return f"dask.distributed cluster at {self.address or 'the given client'}"
+        if self.kind == "local-cluster":
+            return f"dask.distributed LocalCluster of {self.workers} worker processes"
+        return f"local {self.kind} scheduler with {self.workers} workers"
+
+
+def _check_workers(workers):
+    if workers is None:
+        return None
+    if isinstance(workers, bool) or not isinstance(workers, int):
+        raise ParameterError(f"The 'workers' parameter must be a positive integer, got {workers!r}")
+    if not 1 <= workers <= 4096:
+        raise ParameterError(f"The 'workers' parameter must be from 1 to 4096, got {workers}")
+    return workers
+
+
+def resolve_scheduler(scheduler=None, workers=None):
+    """Turn the ``scheduler`` and ``workers`` options into a :class:`SchedulerSpec`.
+
+    Parameters
+    ----------
+    scheduler : None, str or distributed.Client
+        ``"threads"``, ``"processes"``, ``"synchronous"``, a scheduler
+        address such as ``"tcp://10.0.0.5:8786"``, or a client.
+    workers : int, optional
+
+    Returns
+    -------
+    SchedulerSpec
+    """
+    workers = _check_workers(workers)
+    if scheduler is None:
+        if workers is None:
+            return SchedulerSpec("threads", default_workers())
+        return SchedulerSpec("local-cluster", workers)
+    if isinstance(scheduler, str):
+        text = scheduler.strip()
+        low = text.lower()
+        if low in ("sync", "single-threaded"):
+            low = "synchronous"
+        if low in ("threading",):
+            low = "threads"
+        if low in ("multiprocessing",):
+            low = "processes"
+        if low in _LOCAL_KINDS:
+            n = 1 if low == "synchronous" else (workers or default_workers())
+            return SchedulerSpec(low, n)
+        if "://" in text:
+            if workers is not None:
+                raise ParameterError(
+                    "The 'workers' parameter must not be given with a cluster address: the "
+                    f"cluster at {text} has its own workers, got workers={workers}"
+                )
+            return SchedulerSpec("distributed", None, text)
+        raise ParameterError(
+            "The 'scheduler' parameter must be 'threads', 'processes', 'synchronous' or a "
+            f"scheduler address such as 'tcp://host:8786', got {scheduler!r}"
+        )
+    try:
+        from distributed import Client
+    except ImportError:  # pragma: no cover - distributed is a dependency
+        Client = ()
+    if Client and isinstance(scheduler, Client):
+        if workers is not None:
+            raise ParameterError(
+                f"The 'workers' parameter must not be given with a client, got workers={workers}"
+            )
+        return SchedulerSpec("distributed", None, None, scheduler)
+    raise ParameterError(
+        f"The 'scheduler' parameter must be a string or a distributed.Client, got {type(scheduler).__name__}"
+    )
+
+
+# ------------------------------------------------------------------ local runs
+def _install_shared(token, payload):
+    """Pool initializer: unpickle the shared object once per worker process."""
+    _SHARED[token] = pickle.loads(payload)
+
+
+def _call(func, job, shared, retries, limit_blas):
+    """Run one task, retrying errors that are not geosr's own verdicts."""
+    attempt = 0
+    while True:
+        try:
+            if limit_blas:
+                with threadpool_limits(limits=1, user_api="blas"):
+                    return func(job, shared)
+            return func(job, shared)
+        except GeosrError:
+            raise
+        except Exception:
+            attempt += 1
+            if attempt > retries:
+                raise
+
+
+def _call_local(func, token, job, retries, limit_blas):
+    return _call(func, job, _SHARED[token], retries, limit_blas)
+
+
+def _run_local(spec, func, jobs, shared, consume, retries, progress, label):
+    import dask.local
+    import dask.multiprocessing
+    import dask.threaded
+
+    token = uuid.uuid4().hex
+    name = f"geosr-{label}-{token}"
+    limit_blas = spec.kind == "processes"
+    dsk = {(name, i): (_call_local, func, token, job, retries, limit_blas)
+           for i, job in enumerate(jobs)}
+    keys = list(dsk)
+
+    def posttask(key, result, dsk_, state, worker_id):
+        consume(result)
+        # The result is written: drop it from the scheduler's cache at once.
+        state["cache"][key] = None
+        if progress is not None:
+            progress.update()
+
+    callbacks = [(None, None, None, posttask, None)]
+    if not keys:
+        return 0
+    if spec.kind == "processes":
+        payload = pickle.dumps(shared, protocol=pickle.HIGHEST_PROTOCOL)
+        pool = concurrent.futures.ProcessPoolExecutor(
+            max_workers=spec.workers,
+            mp_context=multiprocessing.get_context("spawn"),
+            initializer=_install_shared,
+            initargs=(token, payload),
+        )
+        try:
+            dask.multiprocessing.get(dsk, keys, pool=pool, num_workers=spec.workers,
+                                     callbacks=callbacks, optimize_graph=False)
+        except concurrent.futures.process.BrokenProcessPool as exc:
+            raise RunError(f"A worker process of the local pool died during the run: {exc}") from None
+        finally:
+            pool.shutdown(wait=True, cancel_futures=True)
+        return len(keys)
+    _SHARED[token] = shared
+    try:
+        if spec.kind == "synchronous":
+            dask.local.get_sync(dsk, keys, callbacks=callbacks)
+        else:
+            pool = concurrent.futures.ThreadPoolExecutor(max_workers=spec.workers)
+            try:
+                limit = threadpool_limits(limits=1, user_api="blas") if spec.workers > 1 else contextlib.nullcontext()
+                with limit:
+                    dask.threaded.get(dsk, keys, pool=pool, num_workers=spec.workers,
+                                      callbacks=callbacks)
+            finally:
+                pool.shutdown(wait=True, cancel_futures=True)
+    finally:
+        _SHARED.pop(token, None)
+    return len(keys)
+
+
+# ------------------------------------------------------------ distributed runs
+class _Box:
+    """Wraps the shared object so that scatter sends it as one piece."""
+
+    def __init__(self, value):
+        self.value = value
+
+
+def _call_distributed(func, job, box, limit_blas=True):
+    if limit_blas:
+        with threadpool_limits(limits=1, user_api="blas"):
+            return func(job, box.value)
+    return func(job, box.value)
+
+
+@contextlib.contextmanager
+def _client_for(spec):
+    from distributed import Client, LocalCluster
+
+    if spec.client is not None:
+        yield spec.client
+        return
+    if spec.kind == "local-cluster":
+        cluster = LocalCluster(
+            n_workers=spec.workers,
+            threads_per_worker=1,
+            processes=True,
+            host="127.0.0.1",
+            dashboard_address=None,
+            silence_logs=logging.ERROR,
+        )
+        try:
+            client = Client(cluster)
+            try:
+                yield client
+            finally:
+                client.close()
+        finally:
+            cluster.close()
+        return
+    try:
+        client = Client(spec.address, timeout="20s")
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise RunError(f"The dask scheduler at {spec.address} must be reachable, got: {exc}") from None
+    try:
+        yield client
+    finally:
+        client.close()
+
+
+def _run_distributed(spec, func, jobs, shared, consume, retries, progress, label):
+    from distributed import as_completed
+
+    if not jobs:
+        return 0
+    token = uuid.uuid4().hex[:12]
+    with _client_for(spec) as client:
+        shared_future = client.scatter(_Box(shared), broadcast=True, hash=False)
+        try:
+            threads = sum(client.nthreads().values())
+        except Exception:  # noqa: BLE001 - a best guess is enough
+            threads = 2
+        limit = max(2, 2 * threads)
+        pending = iter(enumerate(jobs))
+        futures = set()
+        ac = as_completed()
+
+        def submit_next():
+            try:
+                i, job = next(pending)
+            except StopIteration:
+                return
+            fut = client.submit(_call_distributed, func, job, shared_future,
+                                key=f"geosr-{label}-{token}-{i}", retries=retries, pure=False)
+            futures.add(fut)
+            ac.add(fut)
+
+        for _ in range(limit):
+            submit_next()
+        done = 0
+        try:
+            for fut in ac:
+                try:
+                    result = fut.result()
+                except GeosrError:
+                    raise
+                except Exception as exc:  # noqa: BLE001 - reported as one clear error
+                    raise RunError(
+                        f"A {label} task failed on the cluster after {retries} retries: "
+                        f"{type(exc).__name__}: {exc}"
+                    ) from exc
+                futures.discard(fut)
+                fut.release()
+                consume(result)
+                done += 1
+                if progress is not None:
+                    progress.update()
+                submit_next()
+        finally:
+            if futures:
+                with contextlib.suppress(Exception):
+                    client.cancel(list(futures))
+            with contextlib.suppress(Exception):
+                client.cancel([shared_future])
+    return done
+
+
+def run_tasks(func, jobs, shared, consume, *, scheduler=None, workers=None, retries=2,
+              progress=None, label="block"):
+    """Run ``func(job, shared)`` for every job; feed results to ``consume``.
+
+    Parameters
+    ----------
+    func : callable
+        A module-level function (it is pickled by reference for worker
+        processes) returning a picklable result.
+    jobs : sequence
+        Picklable job descriptions, one per task.
+    shared : object
+        Passed to every call (the models); sent once per worker.
+    consume : callable
+        Called in the calling process with each result, in completion order.
+    scheduler, workers
+        See :func:`resolve_scheduler`.
+    retries : int
+        Extra attempts for a failing task.
+    progress : geosr.progress.Progress, optional
+        Updated once per finished task.
+    label : str
+        Names the tasks (``geosr-<label>-...`` keys on a cluster).
+
+    Returns
+    -------
+    int
+        Number of tasks run.
+
+    Raises
+    ------
+    GeosrError
+        The first task error that is geosr's own (InputError for a damaged
+        source, ...), unchanged.
+    RunError
+        Any other task failure, after the retries.
+    """
+    if isinstance(retries, bool) or not isinstance(retries, int) or not 0 <= retries <= 100:
+        raise ParameterError(f"The 'retries' parameter must be an integer from 0 to 100, got {retries!r}")
+    spec = scheduler if isinstance(scheduler, SchedulerSpec) else resolve_scheduler(scheduler, workers)
+    jobs = list(jobs)
+    try:
+        if spec.kind in _LOCAL_KINDS:
+            return _run_local(spec, func, jobs, shared, consume, retries, progress, label)
+        return _run_distributed(spec, func, jobs, shared, consume, retries, progress, label)
+    except (GeosrError, KeyboardInterrupt):
+        raise
+    except Exception as exc:  # noqa: BLE001 - one clear error for the caller
+        raise RunError(f"The {label} run failed: {type(exc).__name__}: {exc}") from exc

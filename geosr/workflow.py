@@ -1,0 +1,642 @@
+"""File-level functions: magnify a raster, train models from rasters.
+
+These glue the three lower layers together; their keyword names match the
+command-line options (``--chunk`` is ``chunk_size``, ``--co`` is
+``creation_options``, ...).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+from .enums import Method
+from .errors import InputError, ModelError, ParameterError
+from .progress import Progress
+from .raster import GeoreferencingWarning
+from .raster.blocks import BlockPlan, magnify_one_block
+from .raster.io import (
+    TempFiles,
+    check_bands,
+    check_destination,
+    check_free_space as _check_free_space,
+    inspect_source,
+    remove_stale_temps,
+    terminate_as_interrupt,
+)
+from .raster.masks import MaskMode, mask_mode
+from .raster.profiles import (
+    choose_blocksize,
+    cog_options,
+    gtiff_options,
+    parse_creation_options,
+    validate_creation_options,
+)
+from .raster.stac import stac_item, stac_path, write_stac_item
+from .raster.tags import carried_band_tags, carried_tags, provenance_tags, utc_now
+from .raster.training import (
+    TrainJob,
+    TrainPlan,
+    collect_window_pairs,
+    training_blocks,
+    window_quota,
+)
+from .raster.transforms import scaled_transform
+from .raster.windows import Block, block_grid, check_chunk_size
+from .resample import check_scale
+from .schedule import SchedulerSpec, resolve_scheduler, run_tasks
+
+__all__ = [
+    "magnify_raster",
+    "train_from_rasters",
+    "MagnifyResult",
+    "DEFAULT_MAX_OUTPUT_BYTES",
+]
+
+#: Largest uncompressed output accepted unless raised (guards against a
+#: header that declares an enormous raster in a tiny file).
+DEFAULT_MAX_OUTPUT_BYTES = 256 * 2**30
+
+#: Pairs collected per model, before the model's own random subset.
+_OVERSAMPLE = 1.5
+
+
+@dataclasses.dataclass(frozen=True)
+class MagnifyResult:
+    """What :func:`magnify_raster` wrote.
+
+    Attributes
+    ----------
+    dst : pathlib.Path
+    stac : pathlib.Path or None
+    width, height, count : int
+        Output size and band count.
+    scale : int
+    method : str
+    model_sha256 : str
+        One checksum, or a comma-separated list for per-band models.
+    blocks : int
+        Blocks computed.
+    halo : int
+        Source pixels of context per side each block carried.
+    chunk_size : int
+    seconds : float
+    scheduler : str
+    """
+
+    dst: Path
+    stac: object
+    width: int
+    height: int
+    count: int
+    scale: int
+    method: str
+    model_sha256: str
+    blocks: int
+    halo: int
+    chunk_size: int
+    seconds: float
+    scheduler: str
+
+
+@dataclasses.dataclass(frozen=True)
+class _MagnifyJob:
+    plan: BlockPlan
+    block: Block
+
+
+def _magnify_task(job, models):
+    return magnify_one_block(job.plan, job.block, models)
+
+
+def _check_bool(value, name):
+    if not isinstance(value, (bool, np.bool_)):
+        raise ParameterError(f"The {name!r} parameter must be True or False, got {value!r}")
+    return bool(value)
+
+
+def _is_model(obj):
+    return all(hasattr(obj, a) for a in ("magnify_block", "context_radius", "scale"))
+
+
+def _model_method(model):
+    return str(getattr(model, "method", "unknown"))
+
+
+def _load_models(model):
+    """A model argument as a list of model objects."""
+    if isinstance(model, (str, os.PathLike)):
+        from .model import load_models
+
+        return list(load_models(model))
+    if _is_model(model):
+        return [model]
+    if isinstance(model, (list, tuple)) and model and all(_is_model(m) for m in model):
+        return list(model)
+    raise ParameterError(
+        "The 'model' parameter must be a model, a list of per-band models or a model file "
+        f"path, got {type(model).__name__}"
+    )
+
+
+def _check_models(models, scale, method, n_bands, band_list):
+    scales = {int(m.scale) for m in models}
+    if len(scales) != 1:
+        raise ModelError(f"The models must share one scale, got scales {sorted(scales)}")
+    model_scale = scales.pop()
+    if scale is not None and model_scale != scale:
+        raise ModelError(
+            f"The model must be for the requested scale {scale}, got a model for scale {model_scale}"
+        )
+    if method is not None:
+        methods = {_model_method(m) for m in models}
+        if methods != {str(method)}:
+            raise ModelError(
+                f"The model must use the requested method {str(method)!r}, got "
+                f"{', '.join(sorted(map(repr, methods)))}"
+            )
+    if len(models) not in (1, n_bands):
+        raise ModelError(
+            f"The model must be one shared model or one per magnified band ({n_bands}: bands "
+            f"{', '.join(map(str, band_list))}), got {len(models)} per-band models"
+        )
+    return model_scale
+
+
+def _model_sha(model):
+    sha = getattr(model, "sha256_", None)
+    return str(sha) if sha else "unknown"
+
+
+def magnify_raster(
+    src,
+    dst,
+    model=None,
+    *,
+    scale=None,
+    method=None,
+    chunk_size=1024,
+    workers=None,
+    scheduler=None,
+    bands=None,
+    overwrite=False,
+    cog=False,
+    creation_options=None,
+    consistency=False,
+    ensemble=False,
+    stac=False,
+    quiet=False,
+    retries=2,
+    self_train=False,
+    training=None,
+    max_output_bytes=DEFAULT_MAX_OUTPUT_BYTES,
+    check_free_space=True,
+):
+    """Magnify a georeferenced raster and write it as a GeoTIFF (or COG).
+
+    The raster is read in blocks of ``chunk_size`` source pixels, each with
+    the halo of context the model needs (computed from its parameters), so
+    the output equals what magnifying the whole image at once would give
+    and memory is bounded by the block size. Fine detail is synthesized:
+    the output says so in its tags.
+
+    Parameters
+    ----------
+    src : str or os.PathLike
+        Any raster GDAL reads; never modified.
+    dst : str or os.PathLike
+        Output path. Written to a temporary file beside it and renamed into
+        place; must differ from ``src``.
+    model : CoupledDictionary, list of them, or path, optional
+        One shared model, one model per magnified band, or a model file.
+        Without it the model shipped for ``scale`` is used (or, with
+        ``self_train``, one is learned from ``src`` itself).
+    scale : int, optional
+        Magnification; must match the model's when both are given.
+    method : {"sparse", "anchored"}, optional
+        Must match the model's when given; selects the method to learn with
+        ``self_train``.
+    chunk_size : int
+        Block side in source pixels (at least 16 and at least the halo).
+    workers : int, optional
+        Without ``scheduler``: start a dask.distributed LocalCluster of this
+        many worker processes. With ``"threads"``/``"processes"``: the pool size.
+    scheduler : str or distributed.Client, optional
+        ``"threads"`` (default), ``"processes"``, ``"synchronous"``, or a
+        cluster address ``"tcp://host:port"`` (the workers must reach
+        ``src`` under the same path).
+    bands : sequence of int or str, optional
+        1-based bands to magnify, in output order (``"1,2,3"`` works too).
+        Alpha bands are magnified by nearest neighbour.
+    overwrite : bool
+        Replace an existing ``dst``.
+    cog : bool
+        Write a Cloud Optimized GeoTIFF (with overviews).
+    creation_options : mapping or sequence of "KEY=VALUE", optional
+        GDAL creation options, for the GeoTIFF driver (or the COG driver
+        with ``cog=True``); checked by GDAL before the run.
+    consistency, ensemble : bool
+        Options of the model's reconstruction.
+    stac : bool
+        Also write a STAC Item sidecar (``dst`` with ``.json``).
+    quiet : bool
+        No progress bar on stderr.
+    retries : int
+        Extra attempts for a failing block task.
+    self_train : bool
+        Learn the model from ``src`` itself (treated as the high-res
+        reference) before magnifying it.
+    training : dict, optional
+        Keyword arguments of :func:`train_from_rasters` for ``self_train``
+        (``shared``, ``max_samples``, ``n_atoms``, ...).
+    max_output_bytes : int
+        Refuse outputs larger than this, uncompressed.
+    check_free_space : bool
+        Refuse to start when the destination's file system has less room
+        than the uncompressed output (twice that for a COG).
+
+    Returns
+    -------
+    MagnifyResult
+
+    Raises
+    ------
+    InputError
+        The source cannot be read or used.
+    ModelError
+        The model does not fit (scale, method, band count) or is damaged.
+    DestinationError
+        ``dst`` exists, equals ``src``, or cannot be written.
+    ParameterError
+        A bad option.
+    RunError
+        A task failed for good, or the cluster could not be reached.
+    """
+    started = time.monotonic()
+    overwrite = _check_bool(overwrite, "overwrite")
+    cog = _check_bool(cog, "cog")
+    consistency = _check_bool(consistency, "consistency")
+    ensemble = _check_bool(ensemble, "ensemble")
+    stac = _check_bool(stac, "stac")
+    quiet = _check_bool(quiet, "quiet")
+    self_train = _check_bool(self_train, "self_train")
+    check_space = _check_bool(check_free_space, "check_free_space")
+    if scale is not None:
+        scale = check_scale(scale)
+    if method is not None:
+        method = Method.parse(method, "method")
+    if isinstance(max_output_bytes, bool) or not isinstance(max_output_bytes, (int, np.integer)) \
+            or max_output_bytes < 1:
+        raise ParameterError(
+            f"The 'max_output_bytes' parameter must be a positive integer, got {max_output_bytes!r}"
+        )
+    if self_train and model is not None:
+        raise ParameterError("The 'model' parameter must not be given with self_train=True, got a model")
+    if training is not None and not self_train:
+        raise ParameterError("The 'training' parameter must only be given with self_train=True")
+    spec = resolve_scheduler(scheduler, workers)
+    user_opts = parse_creation_options(creation_options)
+    check_chunk_size(chunk_size)
+
+    info = inspect_source(src)
+    band_sel = check_bands(bands, info.count)
+    alpha = tuple(b for b in band_sel if info.is_alpha(b))
+    model_bands = tuple(b for b in band_sel if not info.is_alpha(b))
+    if not model_bands:
+        raise ParameterError(
+            f"The 'bands' parameter must select at least one band that is not alpha, got bands "
+            f"{', '.join(map(str, band_sel))}"
+        )
+    dtype = str(np.result_type(*[info.dtypes[b - 1] for b in band_sel]))
+
+    # Models: a given one fixes the scale before the destination checks.
+    models = None
+    if model is not None:
+        models = _load_models(model)
+        scale = _check_models(models, scale, method, len(model_bands), model_bands)
+    elif scale is None:
+        raise ParameterError(
+            "The 'scale' parameter must be given when no model is, got None"
+        )
+    dst_path = check_destination(dst, [info.path], overwrite)
+    stac_dst = None
+    if stac:
+        stac_dst = check_destination(stac_path(dst_path), [info.path, dst_path], overwrite, name="stac")
+    out_bytes = scale * scale * info.width * info.height * len(band_sel) * np.dtype(dtype).itemsize
+    if out_bytes > max_output_bytes:
+        raise InputError(
+            f"The output of {info.name!r} magnified x{scale} ({scale * info.width} x "
+            f"{scale * info.height} pixels, {len(band_sel)} bands of {dtype}) must be at most "
+            f"max_output_bytes={max_output_bytes} bytes uncompressed, got {out_bytes}; raise "
+            "max_output_bytes if this size is intended"
+        )
+    if check_space:
+        _check_free_space(dst_path.parent, out_bytes * (2 if cog else 1))
+
+    if models is None:
+        if self_train:
+            options = dict(training or {})
+            for key in ("bands", "scheduler", "workers", "quiet"):
+                if key in options:
+                    raise ParameterError(
+                        f"The 'training' parameter must not set {key!r}; it is taken from the run"
+                    )
+            options.setdefault("chunk_size", max(chunk_size, 64))
+            options.setdefault("retries", retries)
+            models = train_from_rasters(
+                [info.path], scale, bands=list(model_bands), method=method, scheduler=spec,
+                quiet=quiet, **options,
+            )
+        else:
+            from .model import default_model
+
+            models = [default_model(scale)]
+        _check_models(models, scale, method, len(model_bands), model_bands)
+
+    shared = len(models) == 1
+    roles = tuple(-1 if b in alpha else (0 if shared else model_bands.index(b)) for b in band_sel)
+    masked = any(info.may_be_masked(b) for b in model_bands)
+    halo = max(int(m.context_radius(consistency=consistency, masked=masked)) for m in models)
+    chunk = check_chunk_size(chunk_size, halo)
+    mode, nodata = mask_mode(info, band_sel, alpha)
+    plan = BlockPlan(
+        path=info.path,
+        height=info.height,
+        width=info.width,
+        bands=band_sel,
+        roles=roles,
+        halo=halo,
+        scale=scale,
+        dtype=dtype,
+        mode=mode,
+        nodata=nodata,
+        masked=masked or mode is not MaskMode.NONE,
+        consistency=consistency,
+        ensemble=ensemble,
+        read_retries=retries,
+    )
+    blocks = block_grid(info.height, info.width, chunk)
+
+    gt_opts = gtiff_options({} if cog else user_opts, dtype, choose_blocksize(scale * chunk))
+    if user_opts and not cog:
+        validate_creation_options(gt_opts, driver="GTiff", dtype=dtype, count=len(band_sel))
+    cog_opts = cog_options(user_opts, dtype) if cog else None
+    if cog and user_opts:
+        validate_creation_options(cog_opts, driver="COG", dtype=dtype, count=len(band_sel))
+
+    if info.crs is None:
+        what = "GCPs" if info.gcps else "a geotransform" if not info.transform.is_identity else "no georeferencing"
+        warnings.warn(
+            f"The source raster {info.name!r} has no CRS ({what}); the output has no CRS either",
+            GeoreferencingWarning,
+            stacklevel=2,
+        )
+    if info.has_rpcs:
+        warnings.warn(
+            f"The source raster {info.name!r} has RPCs; they are not carried to the output",
+            GeoreferencingWarning,
+            stacklevel=2,
+        )
+
+    shas = [_model_sha(models[r]) for r in roles if r >= 0]
+    method_name = _model_method(models[0])
+    created = utc_now()
+    tags = carried_tags(info.tags)
+    tags.update(provenance_tags(
+        scale=scale, method=method_name, model_sha256=shas, source_name=info.name,
+        created=created, consistency=consistency, ensemble=ensemble,
+    ))
+    band_tags = []
+    for b, r in zip(band_sel, roles):
+        bt = carried_band_tags(info.band_tags[b - 1])
+        if r >= 0:
+            bt["GEOSR_MODEL_SHA256"] = _model_sha(models[r])
+        else:
+            bt["GEOSR_RESAMPLING"] = "nearest"
+        band_tags.append(bt)
+    from .raster.writing import OutputRaster, copy_to_cog, output_profile
+
+    profile = output_profile(info, band_sel, dtype, scale, nodata, gt_opts)
+    jobs = [_MagnifyJob(plan, b) for b in blocks]
+
+    remove_stale_temps(dst_path)
+    if stac_dst is not None:
+        remove_stale_temps(stac_dst)
+    with terminate_as_interrupt(), TempFiles() as temps:
+        tmp = temps.scratch(dst_path, ".tif") if cog else temps.new(dst_path, ".tif")
+        with OutputRaster(tmp, profile, scale, write_mask=mode is MaskMode.MASK) as out:
+            out.set_metadata(info, band_sel, tags, band_tags)
+            with Progress(len(jobs), "magnify", quiet=quiet) as bar:
+                run_tasks(_magnify_task, jobs, models, out.write, scheduler=spec,
+                          retries=retries, progress=bar, label="magnify")
+        if cog:
+            final = temps.new(dst_path, ".tif")
+            if not quiet:
+                import sys
+
+                print("magnify: writing the Cloud Optimized GeoTIFF", file=sys.stderr)
+            copy_to_cog(tmp, final, cog_opts)
+            temps.discard(tmp)
+        if stac_dst is not None:
+            item = stac_item(
+                dst=dst_path, src=info.path, width=info.width * scale, height=info.height * scale,
+                count=len(band_sel), crs=info.crs,
+                transform=scaled_transform(info.transform, scale), scale=scale,
+                method=method_name, model_sha256=tags["GEOSR_MODEL_SHA256"], created=created,
+                cog=cog, source_name=info.name,
+                band_names=[info.descriptions[b - 1] or f"band{b}" for b in band_sel],
+            )
+            stmp = temps.new(stac_dst, ".json")
+            write_stac_item(stmp, item)
+        temps.commit()
+    return MagnifyResult(
+        dst=dst_path,
+        stac=stac_dst,
+        width=info.width * scale,
+        height=info.height * scale,
+        count=len(band_sel),
+        scale=scale,
+        method=method_name,
+        model_sha256=tags["GEOSR_MODEL_SHA256"],
+        blocks=len(blocks),
+        halo=halo,
+        chunk_size=chunk,
+        seconds=time.monotonic() - started,
+        scheduler=spec.describe(),
+    )
+
+
+def _collect_task(job, models):
+    return collect_window_pairs(job, models)
+
+
+def train_from_rasters(
+    paths,
+    scale,
+    *,
+    bands=None,
+    shared=False,
+    max_samples=100_000,
+    method=None,
+    chunk_size=1024,
+    workers=None,
+    scheduler=None,
+    retries=2,
+    random_state=0,
+    quiet=False,
+    output=None,
+    **model_params,
+):
+    """Learn models from high-res reference rasters, read window by window.
+
+    Parameters
+    ----------
+    paths : str, os.PathLike or sequence of them
+        High-res references (the scene itself to bootstrap). With per-band
+        models every reference must have the selected bands.
+    scale : int
+    bands : sequence of int or str, optional
+        1-based bands to learn from; alpha bands are never used. Default:
+        every band that is not alpha.
+    shared : bool
+        One model pooled over every band instead of one model per band.
+    max_samples : int
+        Training pairs per model (a seeded random subset of the usable
+        patches, drawn in proportion to window areas).
+    method : {"sparse", "anchored"}, optional
+        Default: the model's default.
+    chunk_size : int
+        Window side in high-res pixels (rounded down to a multiple of the
+        scale).
+    workers, scheduler, retries
+        As in :func:`magnify_raster`.
+    random_state : int or None
+        Seed of the sampling and of the models.
+    quiet : bool
+        No progress bar.
+    output : str or os.PathLike, optional
+        Also save the models there (``geosr.model.save_models``).
+    **model_params
+        Further ``CoupledDictionary`` parameters (``n_atoms``, ``n_iter``,
+        ``sparsity``, ``degradation``, ...).
+
+    Returns
+    -------
+    list of CoupledDictionary
+        One per band in band order, or one shared model. Each has a
+        ``band_name_`` attribute.
+    """
+    from .model import CoupledDictionary, save_models
+
+    scale = check_scale(scale)
+    shared = _check_bool(shared, "shared")
+    quiet = _check_bool(quiet, "quiet")
+    if isinstance(paths, (str, os.PathLike)):
+        paths = [paths]
+    paths = list(paths)
+    if not paths:
+        raise ParameterError("The 'paths' parameter must name at least one raster, got none")
+    if isinstance(max_samples, bool) or not isinstance(max_samples, (int, np.integer)) or max_samples < 10:
+        raise ParameterError(f"The 'max_samples' parameter must be an integer of at least 10, got {max_samples!r}")
+    spec = scheduler if isinstance(scheduler, SchedulerSpec) else resolve_scheduler(scheduler, workers)
+    chunk = check_chunk_size(chunk_size)
+    if output is not None:
+        output = check_destination(output, paths, overwrite=True, name="output")
+    params = dict(model_params)
+    if method is not None:
+        params["method"] = str(Method.parse(method, "method"))
+    params["max_samples"] = int(max_samples)
+    params["random_state"] = random_state
+    try:
+        CoupledDictionary(scale=scale, **params).get_params()
+    except TypeError as exc:
+        raise ParameterError(f"The model parameters must be CoupledDictionary's, got: {exc}") from None
+
+    infos = [inspect_source(p) for p in paths]
+    selections = []
+    for info in infos:
+        sel = check_bands(bands, info.count)
+        sel = tuple(b for b in sel if not info.is_alpha(b))
+        if not sel:
+            raise InputError(f"The reference {info.name!r} must have a band that is not alpha, got none")
+        selections.append(sel)
+    n_bands = len(selections[0])
+    if not shared and any(len(s) != n_bands for s in selections):
+        counts = ", ".join(f"{i.name}: {len(s)}" for i, s in zip(infos, selections))
+        raise InputError(
+            "The references must have the same number of bands for per-band models, got "
+            f"{counts}; select bands or use shared=True"
+        )
+    n_models = 1 if shared else n_bands
+    models = [CoupledDictionary(scale=scale, **params) for _ in range(n_models)]
+    halo = int(models[0].training_halo())
+    budget = _OVERSAMPLE * max_samples
+
+    areas = []
+    for info in infos:
+        h, w = info.height - info.height % scale, info.width - info.width % scale
+        areas.append(h * w)
+    total = sum(areas) * (n_bands if shared else 1)
+    if sum(areas) == 0:
+        raise InputError(f"The references must be at least {scale} x {scale} pixels, got smaller ones")
+
+    root = np.random.SeedSequence(random_state)
+    jobs = []
+    for info, sel in zip(infos, selections):
+        blocks = training_blocks(info.height, info.width, scale, chunk)
+        if not blocks:
+            continue
+        hh, ww = info.height - info.height % scale, info.width - info.width % scale
+        plan = TrainPlan(
+            path=info.path, height=hh, width=ww, bands=sel,
+            groups=tuple(0 if shared else i for i in range(len(sel))),
+            halo=halo, masked=any(info.may_be_masked(b) for b in sel), read_retries=retries,
+        )
+        for b in blocks:
+            jobs.append((plan, b, window_quota(budget, b.height * b.width, total)))
+    seeds = root.spawn(len(jobs))
+    jobs = [TrainJob(i, plan, b, quota, seeds[i]) for i, (plan, b, quota) in enumerate(jobs)]
+
+    results = {}
+
+    def consume(result):
+        order, samples = result
+        results[order] = samples
+
+    with terminate_as_interrupt(), Progress(len(jobs), "train: collect", quiet=quiet) as bar:
+        run_tasks(_collect_task, jobs, models, consume, scheduler=spec, retries=retries,
+                  progress=bar, label="train")
+    pooled = [[] for _ in models]
+    for order in sorted(results):
+        for group, sample in results[order]:
+            pooled[group].append(sample)
+    names = []
+    first = infos[0]
+    for g, model in enumerate(models):
+        if not shared:
+            b = selections[0][g]
+            name = first.descriptions[b - 1] or f"band{b}"
+        else:
+            name = "shared"
+        names.append(name)
+        if not quiet:
+            import sys
+
+            n = sum(len(s) for s in pooled[g])
+            print(f"train: fitting the model for {name} on {min(n, max_samples)} pairs",
+                  file=sys.stderr)
+        if not pooled[g]:
+            raise InputError(
+                f"The references must have textured valid pixels in {name}, got no usable "
+                "training patch (all nodata or flat?)"
+            )
+        model.fit_pairs(pooled[g])
+        model.band_name_ = name
+    if output is not None:
+        save_models(output, models, band_names=names)
+    return models
