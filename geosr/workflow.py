@@ -389,8 +389,8 @@ def magnify_raster(
     if cog and user_opts:
         validate_creation_options(cog_opts, driver="COG", dtype=dtype, count=len(band_sel))
 
-    if info.crs is None:
-        what = "GCPs" if info.gcps else "a geotransform" if not info.transform.is_identity else "no georeferencing"
+    if info.crs is None and not (info.gcps and info.gcps_crs is not None):
+        what = "a geotransform" if not info.transform.is_identity else "no georeferencing"
         warnings.warn(
             f"The source raster {info.name!r} has no CRS ({what}); the output has no CRS either",
             GeoreferencingWarning,
@@ -431,9 +431,22 @@ def magnify_raster(
         tmp = temps.scratch(dst_path, ".tif") if cog else temps.new(dst_path, ".tif")
         with OutputRaster(tmp, profile, scale, write_mask=mode is MaskMode.MASK) as out:
             out.set_metadata(info, band_sel, tags, band_tags)
+            counts = {"valid": 0}
+
+            def consume(result):
+                out.write(result)
+                counts["valid"] += result.n_valid
+
             with Progress(len(jobs), "magnify", quiet=quiet) as bar:
-                run_tasks(_magnify_task, jobs, models, out.write, scheduler=spec,
+                run_tasks(_magnify_task, jobs, models, consume, scheduler=spec,
                           retries=retries, progress=bar, label="magnify")
+        if counts["valid"] == 0:
+            warnings.warn(
+                f"The source raster {info.name!r} has no valid pixel in the magnified bands; "
+                "the output is entirely nodata",
+                UserWarning,
+                stacklevel=2,
+            )
         if cog:
             final = temps.new(dst_path, ".tif")
             if not quiet:

@@ -87,7 +87,7 @@ class BlockResult:
     mask : ndarray of uint8, shape (scale*height, scale*width), or None
         0 for invalid, 255 for valid; only for ``MaskMode.MASK``.
     n_valid : int
-        Valid output pixels over all bands.
+        Valid output pixels over the magnified (not alpha) bands.
     """
 
     block: Block
@@ -188,12 +188,12 @@ def magnify_one_block(plan, block, models):
                 data[i], h, v, consistency=plan.consistency, ensemble=plan.ensemble
             )
         if role < 0:
-            band, ok = values.astype(out_dtype), ok
+            band = values.astype(out_dtype)
         else:
             band, ok = to_output_dtype(values, ok, out_dtype, nodata)
             all_ok &= ok
+            n_valid += int(ok.sum())
         out[i] = band
-        n_valid += int(ok.sum())
     mask = None
     if plan.mode is MaskMode.MASK:
         mask = np.where(all_ok, 255, 0).astype(np.uint8)

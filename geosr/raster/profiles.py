@@ -11,11 +11,12 @@ import contextlib
 import logging
 import re
 import uuid
+import warnings
 
 import numpy as np
 import rasterio
 import rasterio.shutil
-from rasterio.errors import RasterioError
+from rasterio.errors import NotGeoreferencedWarning, RasterioError
 
 from ..errors import ParameterError
 
@@ -172,7 +173,8 @@ def validate_creation_options(options, *, driver, dtype, count, name="creation_o
     mem = f"/vsimem/geosr-check-{uuid.uuid4().hex}.tif"
     src = f"/vsimem/geosr-check-src-{uuid.uuid4().hex}.tif"
     try:
-        with _gdal_warnings() as messages:
+        with _gdal_warnings() as messages, warnings.catch_warnings():
+            warnings.simplefilter("ignore", NotGeoreferencedWarning)
             try:
                 if driver == "COG":
                     with rasterio.open(src, "w", driver="GTiff", width=size, height=size,

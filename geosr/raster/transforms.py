@@ -20,6 +20,7 @@ from rasterio.control import GroundControlPoint
 
 __all__ = [
     "scaled_transform",
+    "apply_transform",
     "scale_gcps",
     "crs_summary",
     "ground_sample_distance",
@@ -39,9 +40,18 @@ def scaled_transform(transform, scale):
     Returns
     -------
     affine.Affine
-        ``transform * Affine.scale(1 / scale)``.
+        ``transform * Affine.scale(1 / scale)``, written out so that it
+        does not depend on the operator affine versions prefer.
     """
-    return transform * Affine.scale(1.0 / scale)
+    k = 1.0 / scale
+    return Affine(transform.a * k, transform.b * k, transform.c,
+                  transform.d * k, transform.e * k, transform.f)
+
+
+def apply_transform(transform, cols, rows):
+    """World coordinates of pixel coordinates (scalars or arrays)."""
+    return (transform.a * cols + transform.b * rows + transform.c,
+            transform.d * cols + transform.e * rows + transform.f)
 
 
 def scale_gcps(gcps, scale):
@@ -133,9 +143,9 @@ def ground_sample_distance(crs, transform, width, height):
     if pc.is_geographic:
         geod = pc.get_geod()
         col, row = width / 2.0, height / 2.0
-        x0, y0 = transform * (col, row)
-        x1, y1 = transform * (col + 1, row)
-        x2, y2 = transform * (col, row + 1)
+        x0, y0 = apply_transform(transform, col, row)
+        x1, y1 = apply_transform(transform, col + 1, row)
+        x2, y2 = apply_transform(transform, col, row + 1)
         to_lonlat = Transformer.from_crs(pc, pc.geodetic_crs, always_xy=True)
         # Axis order of GIS software: x is longitude, y latitude.
         lon0, lat0 = to_lonlat.transform(x0, y0)
@@ -156,7 +166,7 @@ def _edge_points(transform, width, height, densify):
     t = np.linspace(0.0, 1.0, n)[:-1]
     cols = np.concatenate([t * width, np.full_like(t, width), (1 - t) * width, np.zeros_like(t)])
     rows = np.concatenate([np.zeros_like(t), t * height, np.full_like(t, height), (1 - t) * height])
-    xs, ys = transform * (cols, rows)
+    xs, ys = apply_transform(transform, cols, rows)
     return np.asarray(xs, dtype=float), np.asarray(ys, dtype=float)
 
 
