@@ -1,0 +1,188 @@
+"""``geosr describe MODEL``: print a model card."""
+
+from __future__ import annotations
+
+import json
+import os
+import textwrap
+
+import click
+
+from . import options
+
+_METHOD_NAMES = {
+    "sparse": "sparse coding over coupled K-SVD dictionaries (Zeyde, Elad & Protter 2010)",
+    "anchored": "anchored neighbourhood regression, A+ (Timofte, De Smet & Van Gool 2014)",
+}
+
+
+def _file_header(path):
+    """The JSON header of a model file (format and writer version), or {}.
+
+    Read with ``allow_pickle=False``; only called after load_models accepted
+    the file.
+    """
+    import numpy as np
+
+    try:
+        with np.load(path, allow_pickle=False) as npz:
+            header = json.loads(str(npz["header"]))
+    except Exception:
+        return {}
+    return header if isinstance(header, dict) else {}
+
+
+def model_card(path, models, header=None):
+    """The model card of a model file as a JSON-ready dict.
+
+    Parameters
+    ----------
+    path : str
+        The model file.
+    models : list of CoupledDictionary
+        What :func:`geosr.model.load_models` returned for it.
+    header : dict, optional
+        The file's JSON header (format version, writing geosr version).
+    """
+    from .._version import __version__
+    from ..raster.tags import CAUTION
+
+    header = header or {}
+    entries = []
+    for n, m in enumerate(models):
+        params = m.get_params()
+        params = {k: (str(v) if hasattr(v, "value") else v) for k, v in params.items()}
+        entries.append(
+            {
+                "index": n,
+                "band_name": getattr(m, "band_name_", None),
+                "scale": int(params.get("scale")),
+                "method": str(params.get("method")),
+                "parameters": params,
+                "training": dict(getattr(m, "training_", {}) or {}),
+                "sha256": getattr(m, "sha256_", None),
+            }
+        )
+    return {
+        "file": os.fspath(path),
+        "size_bytes": os.path.getsize(path) if os.path.exists(path) else None,
+        "written_by": header.get("geosr_version"),
+        "format_version": header.get("format_version"),
+        "read_by": __version__,
+        "scale": entries[0]["scale"] if entries else None,
+        "shared": len(entries) == 1,
+        "models": entries,
+        "caution": CAUTION,
+    }
+
+
+def _value(v):
+    if isinstance(v, float):
+        return f"{v:g}"
+    if isinstance(v, (list, tuple)):
+        return ", ".join(_value(x) for x in v)
+    if isinstance(v, dict):
+        return "; ".join(f"{k}: {_value(x)}" for k, x in v.items())
+    return str(v)
+
+
+def format_card(card, width=78):
+    """Render a model card dict (from :func:`model_card`) as text."""
+    lines = []
+    label_width = 19
+
+    def row(label, value, indent=2, wrap=True):
+        head = " " * indent + f"{label:<{label_width}}"
+        text = _value(value)
+        wrapped = textwrap.wrap(text, width=max(20, width - len(head))) if wrap else [text]
+        wrapped = wrapped or [""]
+        lines.append(head + wrapped[0])
+        lines.extend(" " * len(head) + w for w in wrapped[1:])
+
+    models = card["models"]
+    n = len(models)
+    lines.append(f"geosr model card: {card['file']}")
+    if card.get("size_bytes") is not None:
+        row("file size", f"{card['size_bytes'] / 1e6:.2f} MB")
+    if card.get("written_by"):
+        row("written by", f"geosr {card['written_by']} (model format {card.get('format_version')})")
+    row("scale", f"x{card['scale']}")
+    row("models", "1 model for every band" if n == 1 else f"{n} models, one per band")
+
+    def params_of(entry):
+        return {k: v for k, v in entry["parameters"].items() if k not in ("scale", "method")}
+
+    common = n > 0 and all(
+        params_of(e) == params_of(models[0]) and e["method"] == models[0]["method"] for e in models
+    )
+
+    def method_rows(entry, indent):
+        name = _METHOD_NAMES.get(entry["method"])
+        row("method", f"{entry['method']}: {name}" if name else entry["method"], indent)
+        row("parameters", ", ".join(f"{k}={_value(v)}" for k, v in params_of(entry).items()), indent)
+
+    if common:
+        method_rows(models[0], 2)
+    for entry in models:
+        lines.append("")
+        title = "model" if n == 1 else f"model {entry['index'] + 1} of {n}"
+        if entry.get("band_name"):
+            title += f" (band {entry['band_name']})"
+        lines.append("  " + title)
+        if not common:
+            method_rows(entry, 4)
+        training = entry["training"]
+        if "n_images" in training:
+            row("training images", training["n_images"], 4)
+        if "n_samples" in training:
+            row("training samples", training["n_samples"], 4)
+        for key, value in training.items():
+            if key not in ("n_images", "n_samples"):
+                row(key.replace("_", " "), "none" if value is None else value, 4)
+        row("sha256", entry.get("sha256") or "unknown", 4, wrap=False)
+    lines.append("")
+    lines.append("Caution")
+    lines.extend("  " + w for w in textwrap.wrap(card["caution"], width=width - 2))
+    return "\n".join(lines)
+
+
+@click.command(short_help="Print a model card.")
+@click.argument("model", required=False, metavar="MODEL")
+@options.scale_option(
+    required=False, help="Describe the model shipped in the package for this scale instead."
+)
+@click.option("--json", "as_json", is_flag=True, default=False, help="Print the card as JSON.")
+@click.pass_context
+def describe(ctx, model, scale, as_json):
+    """Print the model card of MODEL: scale, method, parameters, training data,
+    sample counts, sha256, the geosr version and the cautions.
+
+    \b
+    Examples:
+      geosr describe drone-x4.npz
+      geosr describe --scale 3          # the shipped model for x3
+    """
+    if (model is None) == (scale is None):
+        raise click.UsageError(
+            "Give either MODEL or --scale (for the shipped model), "
+            f"got {'both' if model is not None else 'neither'}",
+            ctx=ctx,
+        )
+    load_models = options.library_function("geosr.model", "load_models")
+    if model is None:
+        default_model_path = options.library_function("geosr.model", "default_model_path")
+        path = default_model_path(scale)
+        if not path.is_file():
+            from ..errors import ModelError
+
+            raise ModelError(
+                f"The 'scale' parameter must be one with a shipped model, got {scale}: "
+                "this installation has no default model for it"
+            )
+        model = str(path)
+    models = load_models(model)
+    card = model_card(model, models, _file_header(model))
+    if as_json:
+        click.echo(json.dumps(card, indent=2, sort_keys=False))
+    else:
+        click.echo(format_card(card))

@@ -1,0 +1,132 @@
+"""``geosr magnify SRC DST``: magnify a raster by an integer factor."""
+
+from __future__ import annotations
+
+import click
+
+from . import options
+
+
+@click.command(short_help="Magnify a raster by an integer factor.")
+@click.argument("src", metavar="SRC")
+@click.argument("dst", metavar="DST")
+@click.option(
+    "--model",
+    "-m",
+    type=click.Path(exists=True, dir_okay=False),
+    default=None,
+    metavar="MODEL",
+    help="Model file from 'geosr train'. Default: the model shipped for --scale.",
+)
+@click.option(
+    "--self-train",
+    is_flag=True,
+    default=False,
+    help="Learn the model from SRC itself (degrade it, learn, apply) instead of --model.",
+)
+@options.scale_option(
+    required=False,
+    help="Integer magnification factor, 2 to 8. Default: the scale of --model.",
+)
+@options.method_option
+@options.bands_option
+@options.chunk_option
+@options.workers_option
+@options.scheduler_option
+@click.option(
+    "--co",
+    "creation_options",
+    type=options.KeyValueType(),
+    multiple=True,
+    metavar="KEY=VALUE",
+    help="GDAL creation option of the output, e.g. --co COMPRESS=ZSTD; repeatable.",
+)
+@click.option("--cog", is_flag=True, default=False, help="Write a Cloud Optimized GeoTIFF.")
+@options.overwrite_option
+@click.option(
+    "--consistency",
+    is_flag=True,
+    default=False,
+    help="Back-project so that degrading the output reproduces SRC.",
+)
+@click.option(
+    "--ensemble",
+    is_flag=True,
+    default=False,
+    help="Average the 8 flips and rotations (slower, a little better).",
+)
+@click.option(
+    "--stac", is_flag=True, default=False, help="Also write a STAC Item JSON beside DST."
+)
+@click.option(
+    "--max-output",
+    "max_output_bytes",
+    type=options.ByteSize(),
+    default=None,
+    metavar="SIZE",
+    help="Refuse outputs larger than SIZE uncompressed, e.g. 500G. Default 256G.",
+)
+@options.config_option
+@options.quiet_option
+@click.pass_context
+def magnify(ctx, src, dst, model, self_train, scale, method, bands, chunk, workers,
+            scheduler, creation_options, cog, overwrite, consistency, ensemble, stac,
+            max_output_bytes, quiet):
+    """Magnify the raster SRC by an integer factor into DST.
+
+    The CRS is kept, the geotransform refined, nodata and band metadata
+    carried over, and DST is tagged as synthesized detail, not measured data.
+    Without --model or --self-train the model shipped for --scale is used.
+
+    \b
+    Examples:
+      geosr magnify scene.tif scene-x3.tif --scale 3
+      geosr magnify tile.tif tile-x4.tif --model drone-x4.npz --cog
+      geosr magnify big.tif big-x2.tif -s 2 --scheduler tcp://10.0.0.5:8786
+    """
+    model, self_train = options.exclusive(ctx, "model", "self_train")
+    workers, scheduler = options.workers_and_scheduler(ctx)
+    if model is None and not self_train and scale is None:
+        raise click.UsageError(
+            "Missing option '--scale': it is needed to pick the shipped model "
+            "when neither --model nor --self-train is given",
+            ctx=ctx,
+        )
+    magnify_raster = options.library_function("geosr.workflow", "magnify_raster")
+    extra = {} if max_output_bytes is None else {"max_output_bytes": max_output_bytes}
+    result = options.call_library(
+        magnify_raster,
+        src,
+        dst,
+        model,
+        scale=scale,
+        method=method,
+        chunk_size=chunk,
+        workers=workers,
+        scheduler=scheduler,
+        bands=list(bands) if bands else None,
+        overwrite=overwrite,
+        cog=cog,
+        creation_options=dict(creation_options) or None,
+        consistency=consistency,
+        ensemble=ensemble,
+        stac=stac,
+        quiet=quiet,
+        self_train=self_train,
+        **extra,
+    )
+    options.report(ctx, f"geosr: wrote {_summary(result, dst)}")
+    stac_path = getattr(result, "stac", None)
+    if stac_path:
+        options.report(ctx, f"geosr: wrote {stac_path}")
+
+
+def _summary(result, dst):
+    """One line about what magnify_raster wrote."""
+    path = options.result_path(result, dst)
+    try:
+        size = f"{result.width} x {result.height}, {result.count} band"
+        size += "s" if result.count != 1 else ""
+        return f"{path} ({size}, x{result.scale}, {result.method}, {result.seconds:.1f} s)"
+    except AttributeError:
+        return path

@@ -1,0 +1,550 @@
+"""Options shared by the ``geosr`` subcommands, and the checks behind them.
+
+Every check turns a bad value into :class:`click.BadParameter` (exit 2) with
+a message that names the option, the value and what is allowed. Values can
+also come from a TOML file given with ``--config``; a bad value from the file
+is reported with the file and the key instead of the option.
+
+This module imports nothing heavy (no numpy, no rasterio), so that
+``geosr --help`` stays fast.
+"""
+
+from __future__ import annotations
+
+import importlib
+import inspect
+import re
+
+import click
+from click.core import ParameterSource
+
+from ..enums import Degradation, Method
+
+__all__ = [
+    "SCALE_MIN",
+    "SCALE_MAX",
+    "ScaleType",
+    "IntAtLeast",
+    "BandsType",
+    "KeyValueType",
+    "SchedulerAddress",
+    "ByteSize",
+    "scale_option",
+    "method_option",
+    "degradation_option",
+    "bands_option",
+    "chunk_option",
+    "workers_option",
+    "scheduler_option",
+    "quiet_option",
+    "overwrite_option",
+    "config_option",
+    "config_schema",
+    "exclusive",
+    "library_function",
+    "call_library",
+]
+
+#: The range of scale factors the core accepts (geosr.resample.check_scale).
+SCALE_MIN, SCALE_MAX = 2, 8
+
+#: The subcommands that may have a table of their own in a config file.
+COMMANDS = ("train", "magnify", "assess", "describe", "demo")
+
+_CONFIG_META = "geosr.config_path"
+
+
+def _from_config(ctx, param):
+    """True when the value of ``param`` came from the ``--config`` file."""
+    if ctx is None or param is None or param.name is None:
+        return False
+    return ctx.get_parameter_source(param.name) == ParameterSource.DEFAULT_MAP and (
+        _CONFIG_META in ctx.meta
+    )
+
+
+def option_key(param):
+    """The config key of a click option: its long name without the dashes."""
+    longs = [o for o in param.opts if o.startswith("--")]
+    return (longs[0] if longs else param.opts[0]).lstrip("-")
+
+
+class _GeosrType(click.ParamType):
+    """Base of the geosr parameter types: failures name the config key when
+    the value came from the ``--config`` file."""
+
+    #: How the config loader checks a TOML value for this type.
+    config_kind = "str"
+
+    def fail(self, message, param=None, ctx=None):
+        if _from_config(ctx, param):
+            raise click.UsageError(
+                f"Invalid value for the key {option_key(param)!r} in the config file "
+                f"{ctx.meta[_CONFIG_META]}: {message}",
+                ctx=ctx,
+            )
+        super().fail(message, param, ctx)
+
+
+class ScaleType(_GeosrType):
+    """An integer scale factor from 2 to 8."""
+
+    name = "integer"
+    config_kind = "int"
+
+    def convert(self, value, param, ctx):
+        if isinstance(value, bool):
+            self.fail(self._message(value), param, ctx)
+        if isinstance(value, int):
+            scale = value
+        else:
+            text = str(value).strip()
+            if not re.fullmatch(r"[+-]?\d+", text):
+                self.fail(self._message(value), param, ctx)
+            scale = int(text)
+        if not SCALE_MIN <= scale <= SCALE_MAX:
+            self.fail(self._message(value), param, ctx)
+        return scale
+
+    @staticmethod
+    def _message(value):
+        return f"must be an integer from {SCALE_MIN} to {SCALE_MAX}, got {value!r}"
+
+
+class IntAtLeast(_GeosrType):
+    """An integer of at least ``minimum``."""
+
+    name = "integer"
+    config_kind = "int"
+
+    def __init__(self, minimum=1):
+        self.minimum = minimum
+
+    def convert(self, value, param, ctx):
+        message = f"must be an integer of at least {self.minimum}, got {value!r}"
+        if isinstance(value, bool):
+            self.fail(message, param, ctx)
+        if isinstance(value, int):
+            number = value
+        else:
+            text = str(value).strip()
+            if not re.fullmatch(r"[+-]?\d+", text):
+                self.fail(message, param, ctx)
+            number = int(text)
+        if number < self.minimum:
+            self.fail(message, param, ctx)
+        return number
+
+
+class BandsType(_GeosrType):
+    """Band numbers starting at 1: ``"1,2,4"``, ``"1-3"`` (or a TOML array of integers)."""
+
+    name = "list"
+    config_kind = "bands"
+
+    def convert(self, value, param, ctx):
+        message = (
+            "must be distinct band numbers starting at 1, as '1,2,4' or '1-3', "
+            f"got {value!r}"
+        )
+        if isinstance(value, tuple) and all(type(v) is int for v in value):
+            return value  # already converted
+        if isinstance(value, (list, tuple)):
+            items = list(value)
+        else:
+            items = [s.strip() for s in str(value).split(",")]
+        bands = []
+        for item in items:
+            if isinstance(item, bool):
+                self.fail(message, param, ctx)
+            if isinstance(item, int):
+                numbers = [item]
+            else:
+                match = re.fullmatch(r"(\d+)(?:\s*-\s*(\d+))?", str(item))
+                if match is None:
+                    self.fail(message, param, ctx)
+                lo = int(match[1])
+                hi = int(match[2]) if match[2] else lo
+                if hi < lo:
+                    self.fail(message, param, ctx)
+                numbers = range(lo, hi + 1)
+            for band in numbers:
+                if band < 1 or band in bands:
+                    self.fail(message, param, ctx)
+                bands.append(band)
+        if not bands:
+            self.fail(message, param, ctx)
+        return tuple(bands)
+
+
+_CO_KEY = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
+
+
+class KeyValueType(_GeosrType):
+    """A GDAL creation option ``KEY=VALUE``; returns ``(KEY, VALUE)``."""
+
+    name = "KEY=VALUE"
+    config_kind = "key-value"
+
+    def convert(self, value, param, ctx):
+        if isinstance(value, tuple) and len(value) == 2:
+            return value
+        text = str(value)
+        key, sep, val = text.partition("=")
+        if not sep or not _CO_KEY.fullmatch(key.strip()) or not val.strip():
+            self.fail(
+                f"must be KEY=VALUE with a name of letters, digits and underscores, "
+                f"e.g. COMPRESS=ZSTD, got {text!r}",
+                param,
+                ctx,
+            )
+        return key.strip().upper(), val.strip()
+
+
+_ADDRESS = re.compile(
+    r"(?P<scheme>[a-z]+)://(?P<host>\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+)(?::(?P<port>\d{1,5}))?"
+)
+_SCHEMES = ("tcp", "tls", "ucx", "ws", "wss", "inproc")
+#: Schedulers on this machine that --scheduler also names.
+LOCAL_SCHEDULERS = ("threads", "processes", "synchronous")
+
+
+class SchedulerAddress(_GeosrType):
+    """A local scheduler name or the address of a running dask.distributed scheduler."""
+
+    name = "address"
+    config_kind = "str"
+
+    def convert(self, value, param, ctx):
+        text = str(value).strip()
+        if text.lower() in LOCAL_SCHEDULERS:
+            return text.lower()
+        match = _ADDRESS.fullmatch(text)
+        ok = match is not None and match["scheme"] in _SCHEMES
+        if ok and match["port"] is not None and not 0 < int(match["port"]) < 65536:
+            ok = False
+        if not ok:
+            self.fail(
+                f"must be {', '.join(repr(s) for s in LOCAL_SCHEDULERS)} or a dask scheduler "
+                f"address SCHEME://HOST[:PORT] with SCHEME one of {', '.join(_SCHEMES)}, "
+                f"e.g. tcp://10.0.0.5:8786, got {text!r}",
+                param,
+                ctx,
+            )
+        return text
+
+
+_BYTE_UNITS = {"": 1, "B": 1, "K": 2**10, "M": 2**20, "G": 2**30, "T": 2**40}
+
+
+class ByteSize(_GeosrType):
+    """A size in bytes: ``500M``, ``300G``, ``1.5T`` or a plain number of bytes."""
+
+    name = "size"
+    config_kind = "str"
+
+    def convert(self, value, param, ctx):
+        if isinstance(value, int) and not isinstance(value, bool) and value > 0:
+            return value
+        text = str(value).strip().upper().replace("IB", "").rstrip("B") if not isinstance(value, bool) else ""
+        match = re.fullmatch(r"(\d+(?:\.\d+)?)\s*([KMGT]?)", text)
+        if match is None or float(match[1]) <= 0:
+            self.fail(f"must be a size such as 500M, 300G or 2T, got {value!r}", param, ctx)
+        return int(float(match[1]) * _BYTE_UNITS[match[2]])
+
+
+class _ChoiceType(click.Choice):
+    """A case-insensitive choice whose config failures name the key."""
+
+    config_kind = "choice"
+
+    def __init__(self, enum):
+        super().__init__([m.value for m in enum], case_sensitive=False)
+
+    def fail(self, message, param=None, ctx=None):
+        _GeosrType.fail(self, message, param, ctx)
+
+
+# ----------------------------------------------------------------- options
+
+
+def scale_option(required=True, help=None):
+    return click.option(
+        "--scale",
+        "-s",
+        type=ScaleType(),
+        required=required,
+        help=help or f"Integer magnification factor, {SCALE_MIN} to {SCALE_MAX}.",
+    )
+
+
+method_option = click.option(
+    "--method",
+    type=_ChoiceType(Method),
+    default=None,
+    help="How fine detail is synthesized: 'sparse' (OMP over coupled K-SVD "
+    "dictionaries) or 'anchored' (A+, faster). Default: the model's own method.",
+)
+
+degradation_option = click.option(
+    "--degradation",
+    type=_ChoiceType(Degradation),
+    default=None,
+    help="Degradation model used to make low-res training pairs: 'bicubic' "
+    "(antialiased, default), 'gaussian' (point-spread function) or 'area' (block mean).",
+)
+
+bands_option = click.option(
+    "--bands",
+    "-b",
+    type=BandsType(),
+    default=None,
+    metavar="LIST",
+    help="Band numbers to use, starting at 1, e.g. '1,2,3'. Default: all bands.",
+)
+
+#: Smallest block side (geosr.raster.windows.MIN_CHUNK).
+MIN_CHUNK = 16
+
+chunk_option = click.option(
+    "--chunk",
+    type=IntAtLeast(MIN_CHUNK),
+    default=1024,
+    show_default=True,
+    metavar="PIXELS",
+    help="Side of the square input windows processed at a time; bounds memory.",
+)
+
+workers_option = click.option(
+    "--workers",
+    "-w",
+    type=IntAtLeast(1),
+    default=None,
+    metavar="N",
+    help="Start a local dask.distributed cluster of N worker processes.",
+)
+
+scheduler_option = click.option(
+    "--scheduler",
+    type=SchedulerAddress(),
+    default=None,
+    metavar="ADDRESS",
+    help="Join a running dask.distributed scheduler, e.g. tcp://10.0.0.5:8786 "
+    "(the rasters must be readable by the workers at the same paths); or run "
+    "locally with 'threads' (default), 'processes' or 'synchronous'.",
+)
+
+quiet_option = click.option(
+    "--quiet", "-q", is_flag=True, default=False, help="Print no progress."
+)
+
+overwrite_option = click.option(
+    "--overwrite", is_flag=True, default=False, help="Replace an existing output."
+)
+
+
+# ------------------------------------------------------------ config files
+
+
+def config_schema(command):
+    """The config keys of a click command, from its options.
+
+    Returns
+    -------
+    dict
+        ``{key: (param_name, kind, choices)}``, where ``key`` is the long
+        option name without dashes (``"self-train"``), ``param_name`` the
+        Python name (``"self_train"``), ``kind`` one of the kinds that
+        :func:`geosr.config.check_value` knows, ``choices`` a tuple or None.
+    """
+    from ..config import Key
+
+    schema = {}
+    for param in command.params:
+        if not isinstance(param, click.Option) or param.name in ("config", "help"):
+            continue
+        if getattr(param, "hidden", False):
+            continue
+        choices = None
+        if param.is_flag:
+            kind = "bool"
+        elif isinstance(param.type, (_GeosrType, _ChoiceType)):
+            kind = param.type.config_kind
+            if isinstance(param.type, _ChoiceType):
+                choices = tuple(param.type.choices)
+        elif isinstance(param.type, click.types.IntParamType):
+            kind = "int"
+        elif isinstance(param.type, click.types.FloatParamType):
+            kind = "number"
+        else:
+            kind = "str"
+        if param.multiple and kind != "key-value":
+            kind = "list-of-" + kind
+        schema[option_key(param)] = Key(param.name, kind, choices)
+    return schema
+
+
+def _load_config_callback(ctx, param, value):
+    if value is None:
+        return None
+    from ..config import load_config
+
+    schema = config_schema(ctx.command)
+    values = load_config(value, schema, command=ctx.info_name, sections=COMMANDS)
+    defaults = dict(ctx.default_map or {})
+    for key, val in values.items():
+        defaults[schema[key].param] = val
+    ctx.default_map = defaults
+    ctx.meta[_CONFIG_META] = value
+    ctx.meta["geosr.config_keys"] = {schema[k].param: k for k in values}
+    return value
+
+
+config_option = click.option(
+    "--config",
+    type=click.Path(exists=True, dir_okay=False),
+    is_eager=True,
+    expose_value=False,
+    callback=_load_config_callback,
+    metavar="FILE",
+    help="Read option values from a TOML file (keys named as the options, e.g. "
+    "chunk = 512); options given on the command line win.",
+)
+
+
+# ------------------------------------------------------- cross-option checks
+
+
+def _is_set(value):
+    return value is not None and value is not False and value != ()
+
+
+def _describe(ctx, name):
+    """How to name a parameter in a message: '--self-train' or the config key."""
+    param = next(p for p in ctx.command.params if p.name == name)
+    if ctx.get_parameter_source(name) == ParameterSource.DEFAULT_MAP:
+        return f"the config key {option_key(param)!r}"
+    return f"--{option_key(param)}"
+
+
+def exclusive(ctx, first, second):
+    """Resolve two mutually exclusive parameters of the current command.
+
+    When both are set on the command line (or both in the config file) it is a
+    usage error. When one comes from the command line and the other from the
+    config file, the command line wins and the file's value is dropped.
+
+    Returns
+    -------
+    tuple
+        The two values, the losing one replaced by its "unset" value.
+    """
+    a, b = ctx.params.get(first), ctx.params.get(second)
+    if not (_is_set(a) and _is_set(b)):
+        return a, b
+    src_a = ctx.get_parameter_source(first)
+    src_b = ctx.get_parameter_source(second)
+    explicit = (ParameterSource.COMMANDLINE, ParameterSource.ENVIRONMENT)
+    unset_a = False if isinstance(a, bool) else None
+    unset_b = False if isinstance(b, bool) else None
+    if src_a in explicit and src_b not in explicit:
+        return a, unset_b
+    if src_b in explicit and src_a not in explicit:
+        return unset_a, b
+    raise click.UsageError(
+        f"{_describe(ctx, first)} and {_describe(ctx, second)} are mutually exclusive; "
+        f"give only one, got {a!r} and {b!r}",
+        ctx=ctx,
+    )
+
+
+def workers_and_scheduler(ctx):
+    """Resolve --workers and --scheduler: exclusive when the scheduler is a cluster.
+
+    ``--workers N`` starts a local cluster and a scheduler address joins a
+    running one, so the two are mutually exclusive; with a local scheduler
+    name (``threads``, ``processes``) ``--workers`` is the pool size.
+    """
+    workers, scheduler = ctx.params.get("workers"), ctx.params.get("scheduler")
+    if scheduler in LOCAL_SCHEDULERS:
+        return workers, scheduler
+    return exclusive(ctx, "workers", "scheduler")
+
+
+# ------------------------------------------------------ calling the library
+
+
+def library_function(module, name):
+    """Import ``module`` and return its attribute ``name``.
+
+    Raises :class:`geosr.errors.RunError` (exit 1) naming what is missing when
+    this installation does not have it; a module that exists but fails to
+    import for another reason lets that error through.
+    """
+    from ..errors import RunError
+    from .._version import __version__
+
+    try:
+        mod = importlib.import_module(module)
+    except ModuleNotFoundError as exc:
+        if exc.name is not None and (module == exc.name or module.startswith(exc.name + ".")):
+            raise RunError(
+                f"{module}.{name} is not available in this installation of geosr "
+                f"{__version__} (no module {exc.name!r})"
+            ) from None
+        raise
+    try:
+        return getattr(mod, name)
+    except AttributeError:
+        raise RunError(
+            f"{module}.{name} is not available in this installation of geosr {__version__}"
+        ) from None
+
+
+def call_library(func, *args, **kwargs):
+    """Call ``func`` with the keywords it accepts.
+
+    A keyword the function does not take is dropped when its value is unset
+    (None, False, empty); when it is set, the call is refused with a one-line
+    RunError naming the option, instead of a TypeError from deep inside.
+    """
+    from ..errors import RunError
+
+    try:
+        params = inspect.signature(func).parameters
+    except (TypeError, ValueError):  # builtins without a signature
+        return func(*args, **kwargs)
+    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in params.values()):
+        return func(*args, **kwargs)
+    accepted = {}
+    for key, value in kwargs.items():
+        if key in params:
+            accepted[key] = value
+        elif _is_set(value) and value != {}:
+            raise RunError(
+                f"The option {key.replace('_', '-')!r} is not supported by "
+                f"{func.__module__}.{func.__qualname__} in this installation, got {value!r}"
+            )
+    return func(*args, **accepted)
+
+
+def report(ctx, message):
+    """Print a progress or summary line on stderr unless ``--quiet``."""
+    if not ctx.params.get("quiet"):
+        click.echo(message, err=True)
+
+
+def result_path(result, default):
+    """The path a library call says it wrote, or ``default``."""
+    import os
+
+    if isinstance(result, (str, os.PathLike)):
+        return os.fspath(result)
+    for name in ("dst", "path"):
+        if isinstance(result, dict) and isinstance(result.get(name), (str, os.PathLike)):
+            return os.fspath(result[name])
+        path = getattr(result, name, None)
+        if isinstance(path, (str, os.PathLike)):
+            return os.fspath(path)
+    return os.fspath(default)
+
