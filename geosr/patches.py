@@ -43,6 +43,9 @@ __all__ = [
     "lowres_windows",
     "raw_features",
     "detail_patches",
+    "overlap_canvas",
+    "overlap_add",
+    "canvas_average",
     "overlap_average",
     "pca_basis",
 ]
@@ -170,6 +173,45 @@ def detail_patches(detail, scale, rows, cols):
     return view[np.asarray(rows) - 1, np.asarray(cols) - 1].reshape(len(rows), -1)
 
 
+def overlap_canvas(h, w, scale, dtype):
+    """An empty accumulator for :func:`overlap_add` over an ``h x w`` window."""
+    s = int(scale)
+    return np.zeros((h + 4, s, w + 4, s), dtype=dtype)
+
+
+def overlap_add(canvas, patches, first_row):
+    """Add a strip of patches into an overlap canvas.
+
+    Parameters
+    ----------
+    canvas : ndarray, shape (h + 4, s, w + 4, s)
+        From :func:`overlap_canvas`.
+    patches : ndarray, shape (n_rows, w + 2, (3s)**2)
+        Patches for centre rows ``first_row - 1 .. first_row + n_rows - 2``
+        of the window (row index 0 is the ring of centres above it) and for
+        the centre columns ``-1 .. w``.
+    first_row : int
+        Index of the strip's first centre row, counted from 0 at the ring.
+    """
+    s = canvas.shape[1]
+    nr, wp = patches.shape[:2]
+    p = patches.reshape(nr, wp, 3, s, 3, s)
+    for a in range(3):
+        for b in range(3):
+            # Centre index ci covers window cell ci - 2 + a, canvas row ci + a.
+            canvas[first_row + a : first_row + a + nr, :, b : b + wp, :] += p[
+                :, :, a, :, b, :
+            ].transpose(0, 2, 1, 3)
+
+
+def canvas_average(canvas):
+    """The averaged detail of the window from a filled canvas, (s*h, s*w)."""
+    hc, s, wc, _ = canvas.shape
+    h, w = hc - 4, wc - 4
+    inner = canvas[2 : h + 2, :, 2 : w + 2, :] * canvas.dtype.type(1.0 / 9.0)
+    return inner.reshape(h * s, w * s)
+
+
 def overlap_average(patches, scale):
     """Average the nine patches covering each cell of a window.
 
@@ -184,17 +226,9 @@ def overlap_average(patches, scale):
     ndarray, shape (s*h, s*w)
         The mean of the nine contributions at every high-res pixel.
     """
-    s = int(scale)
-    hp, wp = patches.shape[:2]
-    h, w = hp - 2, wp - 2
-    p = patches.reshape(hp, wp, 3, s, 3, s)
-    out = np.zeros((h, s, w, s), dtype=patches.dtype)
-    for a in range(3):
-        for b in range(3):
-            # Centre index ci (0..h+1) covers window cell ci - 2 + a.
-            out += p[2 - a : 2 - a + h, 2 - b : 2 - b + w, a, :, b, :].transpose(0, 2, 1, 3)
-    out *= patches.dtype.type(1.0 / 9.0)
-    return out.reshape(h * s, w * s)
+    canvas = overlap_canvas(patches.shape[0] - 2, patches.shape[1] - 2, scale, patches.dtype)
+    overlap_add(canvas, patches, 0)
+    return canvas_average(canvas)
 
 
 def pca_basis(covariance, energy=0.999):

@@ -1,0 +1,1051 @@
+"""Coupled low-/high-resolution dictionaries: training, magnification, model files.
+
+Two ways to synthesize the detail patch of a low-res feature ``f``:
+
+``"sparse"``
+    Sparse coding over coupled dictionaries (Zeyde, Elad & Protter 2010):
+    ``f ~ D_l a`` with at most ``sparsity`` atoms found by OMP, the patch is
+    ``D_h a``. ``D_l`` by K-SVD, ``D_h`` by least squares on the training
+    codes.
+``"anchored"``
+    Anchored neighbourhood regression in its adjusted form (A+, Timofte,
+    De Smet & Van Gool 2014): every atom of ``D_l`` anchors a ridge
+    regression ``P_j`` learned on the training features most correlated with
+    it; the patch is ``P_j f`` for the atom most correlated with ``f``.
+
+Both are positively homogeneous and shift-equivariant in value
+(``magnify(c x + b) = c magnify(x) + b`` for ``c > 0``), so one model serves
+8-bit, 16-bit and float data without rescaling.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import hashlib
+import json
+import math
+import os
+import tempfile
+import warnings
+from importlib import resources
+
+import numpy as np
+import scipy.sparse
+from sklearn.base import BaseEstimator
+from threadpoolctl import threadpool_limits
+
+from . import _version
+from .enums import Degradation, Method
+from .errors import InputError, ModelError, NotFittedError, ParameterError
+from .nodata import FILL_DISTANCE, fill_invalid
+from .patches import (
+    FEATURE_RADIUS,
+    PATCH_REACH,
+    canvas_average,
+    detail_patches,
+    lowres_windows,
+    overlap_add,
+    overlap_canvas,
+    pca_basis,
+    raw_feature_kernel,
+)
+from .resample import (
+    UPSCALE_MARGIN,
+    check_scale,
+    degradation_margin,
+    degrade_valid,
+    rescale,
+    upscale_valid,
+    _check_sigma,
+)
+from .sparse import ksvd, omp_codes
+
+__all__ = [
+    "CoupledDictionary",
+    "PairSample",
+    "save_models",
+    "load_models",
+    "default_model",
+    "default_model_path",
+    "FORMAT_VERSION",
+]
+
+#: Version of the model file layout; bumped when the layout changes.
+FORMAT_VERSION = 1
+
+#: Centres processed at once when magnifying; bounds the working memory.
+_STRIP_CENTRES = 1 << 16
+
+#: Relative feature norm under which a training patch counts as flat.
+_FLAT_FRACTION = 0.02
+
+#: Index of the centre pixel in a flattened feature window.
+_CENTRE = ((2 * FEATURE_RADIUS + 1) ** 2) // 2
+
+#: Shrink factor of the extra training copies (0.98**k, k = 0 .. copies - 1).
+_RESCALE_STEP = 0.98
+
+
+@dataclasses.dataclass
+class PairSample:
+    """Training pairs collected from one high-res image or window.
+
+    Attributes
+    ----------
+    windows : ndarray, shape (n, (2*FEATURE_RADIUS + 1)**2), float32
+        Low-res windows around each patch centre (the features are a fixed
+        linear map of them).
+    details : ndarray, shape (n, (3*scale)**2), float32
+        High-res detail patches ``y_h - y_l``.
+    scale : int
+    n_images : int
+        How many source images the sample came from.
+    """
+
+    windows: np.ndarray
+    details: np.ndarray
+    scale: int
+    n_images: int = 1
+
+    def __len__(self):
+        return len(self.windows)
+
+
+def _rng(random_state):
+    if isinstance(random_state, np.random.Generator):
+        return random_state
+    if isinstance(random_state, np.random.RandomState):
+        return np.random.default_rng(random_state.randint(0, 2**31 - 1))
+    return np.random.default_rng(random_state)
+
+
+def _work_dtype(a):
+    return np.dtype(np.float32) if a.dtype == np.float32 else np.dtype(np.float64)
+
+
+def _check_int(value, name, low, high=None):
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+        raise ParameterError(f"The {name!r} parameter must be an integer, got {value!r}")
+    if value < low or (high is not None and value > high):
+        bound = f"from {low} to {high}" if high is not None else f"of at least {low}"
+        raise ParameterError(f"The {name!r} parameter must be an integer {bound}, got {value!r}")
+    return int(value)
+
+
+def _check_float(value, name, low, high, low_open=False):
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        v = float("nan")
+    ok = math.isfinite(v) and (v > low if low_open else v >= low) and v <= high
+    if not ok or isinstance(value, bool):
+        op = "greater than" if low_open else "at least"
+        raise ParameterError(
+            f"The {name!r} parameter must be a number {op} {low} and at most {high}, got {value!r}"
+        )
+    return v
+
+
+def _dihedral(a, k):
+    """The k-th of the eight flips and rotations of the last two axes."""
+    if k >= 4:
+        a = a[..., ::-1]
+    return np.rot90(a, k % 4, axes=(-2, -1))
+
+
+def _dihedral_inverse(a, k):
+    a = np.rot90(a, -(k % 4), axes=(-2, -1))
+    if k >= 4:
+        a = a[..., ::-1]
+    return a
+
+
+class CoupledDictionary(BaseEstimator):
+    """Magnify 2-D images by an integer factor with a learned sparse prior.
+
+    Parameters
+    ----------
+    scale : int
+        Magnification factor, 2 to 8.
+    method : {"sparse", "anchored"}
+        ``"sparse"``: OMP over coupled K-SVD dictionaries; ``"anchored"``:
+        anchored neighbourhood regression (A+), faster and sharper.
+    n_atoms : int
+        Dictionary size (anchors for ``"anchored"``).
+    sparsity : int
+        Atoms per patch in OMP (training and the sparse path).
+    n_iter : int
+        K-SVD iterations; 0 keeps the initial dictionary of training features.
+    degradation : {"bicubic", "gaussian", "area"}
+        The model that turns high-res training images into low-res ones; it
+        should describe how the data to magnify was formed.
+    sigma : float, optional
+        Gaussian point-spread width in high-res pixels (``"gaussian"`` only).
+    max_samples : int
+        At most this many training pairs are used (a seeded random subset).
+    energy : float
+        Fraction of the feature energy the PCA keeps.
+    neighbours : int
+        Training features per anchor (``"anchored"``).
+    ridge : float
+        Ridge weight of the anchored regressions.
+    rescaled_copies : int
+        Training copies of each in-memory reference rescaled by 0.98**k,
+        k = 0 .. rescaled_copies - 1 (1 means the reference only).
+    random_state : int, numpy Generator or None
+        Seed for sample selection and K-SVD.
+
+    Attributes
+    ----------
+    feature_kernel_ : ndarray, shape (n_features, (2*FEATURE_RADIUS + 1)**2)
+        The PCA-projected feature operator on low-res windows.
+    pca_eigenvalues_ : ndarray, shape (n_features,)
+    dictionary_low_ : ndarray, shape (n_features, n_atoms)
+        Unit-norm low-res atoms.
+    dictionary_high_ : ndarray, shape ((3*scale)**2, n_atoms)
+        High-res detail atoms (``"sparse"``).
+    projections_ : ndarray, shape (n_atoms, (3*scale)**2, n_features)
+        Anchored regressions (``"anchored"``).
+    training_ : dict
+        Provenance of the training (image and sample counts, degradation).
+    sha256_ : str
+        Checksum of the learned arrays, as written in the model file.
+    """
+
+    def __init__(
+        self,
+        scale=3,
+        method="sparse",
+        n_atoms=1000,
+        sparsity=3,
+        n_iter=40,
+        degradation="bicubic",
+        sigma=None,
+        max_samples=100_000,
+        energy=0.999,
+        neighbours=2048,
+        ridge=0.1,
+        rescaled_copies=1,
+        random_state=0,
+    ):
+        self.scale = scale
+        self.method = method
+        self.n_atoms = n_atoms
+        self.sparsity = sparsity
+        self.n_iter = n_iter
+        self.degradation = degradation
+        self.sigma = sigma
+        self.max_samples = max_samples
+        self.energy = energy
+        self.neighbours = neighbours
+        self.ridge = ridge
+        self.rescaled_copies = rescaled_copies
+        self.random_state = random_state
+
+    # ------------------------------------------------------------------ checks
+    def _validate_params(self):
+        """Check every parameter and return them normalised in a dict."""
+        p = {}
+        p["scale"] = check_scale(self.scale)
+        p["method"] = Method.parse(self.method, "method")
+        p["n_atoms"] = _check_int(self.n_atoms, "n_atoms", 2, 100_000)
+        p["sparsity"] = _check_int(self.sparsity, "sparsity", 1, 64)
+        p["n_iter"] = _check_int(self.n_iter, "n_iter", 0, 1000)
+        p["degradation"] = Degradation.parse(self.degradation, "degradation")
+        p["sigma"] = _check_sigma(p["scale"], p["degradation"], self.sigma)
+        p["max_samples"] = _check_int(self.max_samples, "max_samples", 10)
+        p["energy"] = _check_float(self.energy, "energy", 0.0, 1.0, low_open=True)
+        p["neighbours"] = _check_int(self.neighbours, "neighbours", 1)
+        p["ridge"] = _check_float(self.ridge, "ridge", 0.0, 1e6, low_open=True)
+        p["rescaled_copies"] = _check_int(self.rescaled_copies, "rescaled_copies", 1, 64)
+        return p
+
+    def _check_fitted(self):
+        if not hasattr(self, "feature_kernel_"):
+            raise NotFittedError(
+                "This CoupledDictionary is not fitted yet; call fit() or load a model file first"
+            )
+
+    @property
+    def _scale(self):
+        return check_scale(self.scale)
+
+    # ----------------------------------------------------------------- context
+    def context_radius(self, consistency=False, masked=False):
+        """Low-res pixels of context one output block needs on each side.
+
+        Parameters
+        ----------
+        consistency : bool
+            Whether measurement consistency will be enforced.
+        masked : bool
+            Whether some input pixels are invalid (they are filled first).
+
+        Returns
+        -------
+        int
+            The radius R: the output of a window depends on input pixels at
+            most R low-res pixels away from it. It is the feature radius plus
+            one ring of patch centres, plus the fill distance when masked,
+            plus the reach of the consistency step.
+        """
+        radius = FEATURE_RADIUS + PATCH_REACH
+        if masked:
+            radius += FILL_DISTANCE
+        if consistency:
+            radius += self._consistency_reach()
+        return radius
+
+    def _consistency_reach(self):
+        p_scale = self._scale
+        deg = Degradation.parse(self.degradation, "degradation")
+        if deg is Degradation.AREA:
+            return 0
+        left, right = degradation_margin(p_scale, deg, self.sigma)
+        per_step = UPSCALE_MARGIN + math.ceil(max(left, right) / p_scale)
+        return _CONSISTENCY_STEPS * per_step
+
+    def training_halo(self):
+        """High-res pixels of context per side that :meth:`collect_pairs` needs.
+
+        A multiple of the scale: the degradation support plus the feature
+        radius, so that features near a window edge are those the whole
+        image would give.
+        """
+        s = self._scale
+        deg = Degradation.parse(self.degradation, "degradation")
+        margin = max(degradation_margin(s, deg, _check_sigma(s, deg, self.sigma)))
+        return s * (FEATURE_RADIUS + math.ceil(margin / s))
+
+    # ---------------------------------------------------------------- training
+    def collect_pairs(self, hr_block, halo, valid=None, max_pairs=None, random_state=None):
+        """Collect training pairs from a high-res window with context.
+
+        Parameters
+        ----------
+        hr_block : ndarray, shape (rows + 2*halo, cols + 2*halo)
+            High-res reference window with ``halo`` pixels of real context on
+            each side (symmetric extension where it leaves the image).
+            ``rows`` and ``cols`` are cropped down to multiples of the scale.
+        halo : int
+            At least :meth:`training_halo`.
+        valid : ndarray of bool, same shape, optional
+            Measured pixels; patches whose context touches an invalid pixel
+            are skipped, and so are non-finite pixels.
+        max_pairs : int, optional
+            Keep at most this many pairs (a seeded random subset).
+        random_state : int, Generator or None
+            Defaults to the model's ``random_state``.
+
+        Returns
+        -------
+        PairSample
+            Values are divided by the standard deviation of the valid
+            interior so that references of any dynamic range weigh alike.
+        """
+        p = self._validate_params()
+        s = p["scale"]
+        need = self.training_halo()
+        block = np.asarray(hr_block)
+        if block.ndim != 2:
+            raise InputError(f"The training block must be a 2-D array, got shape {block.shape}")
+        halo = _check_int(halo, "halo", need)
+        if valid is None:
+            valid = np.ones(block.shape, dtype=bool)
+        valid = np.asarray(valid, dtype=bool)
+        if valid.shape != block.shape:
+            raise InputError(
+                f"The valid mask must have the block's shape {block.shape}, got {valid.shape}"
+            )
+        rng = _rng(self.random_state if random_state is None else random_state)
+        block = block.astype(np.float64)
+        valid = valid & np.isfinite(block)
+        samples = [self._pairs_from_block(block, halo, valid, p)]
+        for k in range(1, p["rescaled_copies"]):
+            factor = _RESCALE_STEP**k
+            inner = block[halo:-halo, halo:-halo]
+            inner_valid = valid[halo:-halo, halo:-halo]
+            small = rescale(np.where(inner_valid, inner, 0.0), factor)
+            small_valid = rescale(inner_valid.astype(np.float64), factor) > 0.999
+            if min(small.shape) < 4 * s:
+                break
+            small_block = np.pad(small, need, mode="symmetric")
+            small_valid = np.pad(small_valid, need, mode="symmetric")
+            samples.append(self._pairs_from_block(small_block, need, small_valid, p))
+        windows = np.concatenate([w for w, _ in samples])
+        details = np.concatenate([d for _, d in samples])
+        if max_pairs is not None and len(windows) > max_pairs:
+            keep = np.sort(rng.choice(len(windows), size=int(max_pairs), replace=False))
+            windows, details = windows[keep], details[keep]
+        return PairSample(windows, details, s, 1)
+
+    def _pairs_from_block(self, block, halo, valid, p):
+        s = p["scale"]
+        r = FEATURE_RADIUS
+        margin_cells = halo // s - r
+        rows = (block.shape[0] - 2 * halo) // s
+        cols = (block.shape[1] - 2 * halo) // s
+        n_raw = (2 * r + 1) ** 2
+        empty = (np.empty((0, n_raw), np.float32), np.empty((0, (3 * s) ** 2), np.float32))
+        if rows < 3 or cols < 3:
+            return empty
+        # Keep whole cells: the interior starts at halo and spans rows*s.
+        ext = slice(halo - s * (r + margin_cells), halo + s * (rows + r + margin_cells))
+        block = block[ext, ext.start : halo + s * (cols + r + margin_cells)]
+        valid = valid[ext, ext.start : halo + s * (cols + r + margin_cells)]
+        inner = (slice(s * (r + margin_cells), s * (r + margin_cells + rows)),
+                 slice(s * (r + margin_cells), s * (r + margin_cells + cols)))
+        good = valid[inner]
+        if good.sum() < 2:
+            return empty
+        spread = float(block[inner][good].std())
+        if not spread > 0:
+            return empty
+        block = np.where(valid, block, 0.0) / spread
+        lr = degrade_valid(block, s, p["degradation"], p["sigma"], s * margin_cells)
+        # lr covers cells -r .. rows + r - 1.
+        m = UPSCALE_MARGIN
+        y_l = upscale_valid(lr[r - m : r + rows + m, r - m : r + cols + m], s, m)
+        detail = block[inner] - y_l
+        # A cell is unusable if any high-res pixel its degradation reads is invalid.
+        from scipy.ndimage import maximum_filter
+
+        left, right = degradation_margin(s, p["degradation"], p["sigma"])
+        bad_hr = ~valid
+        # Centred at a cell's first pixel, this window covers every pixel it reads.
+        bad_hr = maximum_filter(bad_hr, size=2 * (max(left, right) + s) + 1, mode="nearest")
+        bad_lr = bad_hr[s * margin_cells :: s, s * margin_cells :: s][: rows + 2 * r, : cols + 2 * r]
+        bad_centre = maximum_filter(bad_lr.astype(np.uint8), size=2 * r + 1, mode="nearest")[
+            r : r + rows, r : r + cols
+        ].astype(bool)
+        ci, cj = np.meshgrid(np.arange(1, rows - 1), np.arange(1, cols - 1), indexing="ij")
+        ci, cj = ci.ravel(), cj.ravel()
+        keep = ~bad_centre[ci, cj]
+        ci, cj = ci[keep], cj[keep]
+        if len(ci) == 0:
+            return empty
+        all_windows = lowres_windows(lr)  # one row per cell 0..rows-1 x 0..cols-1
+        windows = all_windows[ci * cols + cj]
+        kernel = raw_feature_kernel(s)
+        gram = kernel.T @ kernel
+        norms = np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", windows, gram, windows), 0.0))
+        textured = norms > _FLAT_FRACTION * norms.mean() if norms.mean() > 0 else norms > 0
+        windows = windows[textured]
+        details = detail_patches(detail, s, ci[textured], cj[textured])
+        return windows.astype(np.float32), details.astype(np.float32)
+
+    def fit(self, images, valid=None):
+        """Learn the dictionaries from high-res training images.
+
+        Parameters
+        ----------
+        images : sequence of ndarray, each shape (rows, cols)
+            High-res references (any real dtype); each is cropped to a
+            multiple of the scale. Bootstrapping from a scene is
+            ``fit([scene])`` followed by ``magnify(scene)``.
+        valid : sequence of bool ndarray, optional
+            Measured pixels of each image.
+
+        Returns
+        -------
+        self
+        """
+        p = self._validate_params()
+        if isinstance(images, np.ndarray) and images.ndim == 2:
+            raise InputError(
+                "The 'images' parameter must be a sequence of 2-D arrays, got one 2-D array; "
+                "pass [image]"
+            )
+        images = list(images)
+        if not images:
+            raise InputError("The 'images' parameter must hold at least one image, got none")
+        if valid is not None:
+            valid = list(valid)
+            if len(valid) != len(images):
+                raise InputError(
+                    f"The 'valid' parameter must hold one mask per image ({len(images)}), "
+                    f"got {len(valid)}"
+                )
+        rng = _rng(self.random_state)
+        halo = self.training_halo()
+        per_image = max(1, int(math.ceil(p["max_samples"] * 1.5 / len(images))))
+        samples = []
+        for n, image in enumerate(images):
+            image = np.asarray(image)
+            if image.ndim != 2 or not np.issubdtype(image.dtype, np.number) or np.iscomplexobj(image):
+                raise InputError(
+                    f"Training image {n} must be a 2-D real array, got shape {image.shape} "
+                    f"and dtype {image.dtype}"
+                )
+            mask = None if valid is None else np.asarray(valid[n], dtype=bool)
+            rows = image.shape[0] - image.shape[0] % p["scale"]
+            cols = image.shape[1] - image.shape[1] % p["scale"]
+            image = image[:rows, :cols]
+            if mask is not None:
+                mask = np.pad(mask[:rows, :cols], halo, mode="symmetric")
+            block = np.pad(image.astype(np.float64), halo, mode="symmetric")
+            samples.append(self.collect_pairs(block, halo, mask, per_image, rng))
+        return self.fit_pairs(samples)
+
+    def fit_pairs(self, samples):
+        """Learn the dictionaries from collected training pairs.
+
+        Parameters
+        ----------
+        samples : sequence of PairSample
+            From :meth:`collect_pairs`, all at this model's scale.
+
+        Returns
+        -------
+        self
+        """
+        p = self._validate_params()
+        samples = list(samples)
+        for smp in samples:
+            if smp.scale != p["scale"]:
+                raise InputError(
+                    f"Training pairs must be collected at scale {p['scale']}, got scale {smp.scale}"
+                )
+        n_images = sum(smp.n_images for smp in samples)
+        windows = np.concatenate([smp.windows for smp in samples]) if samples else np.empty((0, 81))
+        details = np.concatenate([smp.details for smp in samples]) if samples else np.empty((0, 1))
+        rng = _rng(self.random_state)
+        if len(windows) > p["max_samples"]:
+            keep = np.sort(rng.choice(len(windows), size=p["max_samples"], replace=False))
+            windows, details = windows[keep], details[keep]
+        n = len(windows)
+        if n < max(2 * p["n_atoms"], 50):
+            raise InputError(
+                f"Training needs at least {max(2 * p['n_atoms'], 50)} textured patches for "
+                f"{p['n_atoms']} atoms, got {n}; give more or larger references, or fewer atoms"
+            )
+        s = p["scale"]
+        raw = raw_feature_kernel(s)
+        w64 = windows.astype(np.float64)
+        cov = raw @ (w64.T @ w64) @ raw.T
+        basis, eigenvalues = pca_basis(cov, p["energy"])
+        kernel = basis.T @ raw  # (d, window size)
+        features = (windows @ kernel.T.astype(np.float32)).astype(np.float32)
+        details = details.astype(np.float32)
+        dictionary, info = ksvd(
+            features.T, p["n_atoms"], p["sparsity"], p["n_iter"], random_state=rng
+        )
+        dictionary = np.asarray(dictionary, dtype=np.float32)
+        for name in ("dictionary_high_", "projections_"):
+            if hasattr(self, name):
+                delattr(self, name)
+        if p["method"] is Method.SPARSE:
+            self.dictionary_high_ = self._fit_high_dictionary(dictionary, features, details, p)
+        else:
+            self.projections_ = self._fit_projections(dictionary, features, details, p)
+        self.feature_kernel_ = kernel.astype(np.float32)
+        self.pca_eigenvalues_ = eigenvalues.astype(np.float32)
+        self.dictionary_low_ = dictionary
+        self.training_ = {
+            "n_images": int(n_images),
+            "n_samples": int(n),
+            "n_features": int(kernel.shape[0]),
+            "degradation": str(p["degradation"]),
+            "sigma": p["sigma"],
+            "rescaled_copies": p["rescaled_copies"],
+            "ksvd_iterations": int(info.get("n_iter", p["n_iter"])) if isinstance(info, dict) else p["n_iter"],
+        }
+        self.sha256_ = _model_sha256(self._arrays(), self._header_params())
+        return self
+
+    @staticmethod
+    def _fit_high_dictionary(dictionary, features, details, p):
+        """Least-squares high-res atoms: D_h = P_h A^T (A A^T)^-1."""
+        idx, coef = omp_codes(dictionary, features.T, p["sparsity"])
+        n, k = idx.shape
+        codes = scipy.sparse.csc_matrix(
+            (coef.ravel().astype(np.float64), (idx.ravel(), np.repeat(np.arange(n), k))),
+            shape=(dictionary.shape[1], n),
+        )
+        gram = (codes @ codes.T).toarray()
+        rhs = (codes @ details.astype(np.float64)).T  # (patch, atoms)
+        reg = 1e-6 * max(np.trace(gram) / len(gram), 1e-12)
+        gram[np.diag_indices_from(gram)] += reg
+        high = np.linalg.solve(gram, rhs.T).T
+        return high.astype(np.float32)
+
+    @staticmethod
+    def _fit_projections(dictionary, features, details, p):
+        """Ridge regressions anchored at every atom (A+)."""
+        norms = np.linalg.norm(features, axis=1)
+        norms[norms == 0] = 1.0
+        fn = features / norms[:, None]
+        dn = details / norms[:, None]
+        n_atoms = dictionary.shape[1]
+        d = features.shape[1]
+        k = min(p["neighbours"], len(features))
+        projections = np.empty((n_atoms, details.shape[1], d), dtype=np.float32)
+        eye = p["ridge"] * np.eye(d)
+        block = max(1, (1 << 25) // max(len(features), 1))
+        for a0 in range(0, n_atoms, block):
+            atoms = dictionary[:, a0 : a0 + block]
+            corr = np.abs(atoms.T @ fn.T)  # (block, n)
+            if k < corr.shape[1]:
+                near = np.argpartition(-corr, k - 1, axis=1)[:, :k]
+            else:
+                near = np.broadcast_to(np.arange(corr.shape[1]), corr.shape)
+            with threadpool_limits(limits=1, user_api="blas"):
+                for j in range(atoms.shape[1]):
+                    nl = fn[near[j]].astype(np.float64)  # (k, d)
+                    nh = dn[near[j]].astype(np.float64)  # (k, patch)
+                    # P = N_h N_l^T (N_l N_l^T + ridge I)^-1: the d x d form of the ridge
+                    # solution N_h (N_l^T N_l + ridge I)^-1 N_l^T (push-through identity).
+                    projections[a0 + j] = np.linalg.solve(nl.T @ nl + eye, nl.T @ nh).T
+        return projections
+
+    # ------------------------------------------------------------- magnifying
+    def magnify(self, image, valid=None, *, consistency=False, ensemble=False):
+        """Magnify a whole 2-D image.
+
+        Parameters
+        ----------
+        image : ndarray, shape (h, w)
+            Low-res image, any real dtype. Non-finite pixels are invalid.
+        valid : ndarray of bool, shape (h, w), optional
+            Measured pixels; invalid ones never influence valid outputs.
+        consistency : bool
+            Enforce that degrading the output reproduces the input.
+        ensemble : bool
+            Average over the eight flips and rotations.
+
+        Returns
+        -------
+        ndarray, shape (scale*h, scale*w)
+            float32 for float32 input, float64 otherwise; NaN under invalid
+            input pixels (magnified by nearest neighbour).
+        """
+        self._check_fitted()
+        image = self._check_image(image, "image")
+        s = self._scale
+        valid = self._valid_mask(image, valid)
+        masked = valid is not None and not valid.all()
+        r = self.context_radius(consistency=consistency, masked=masked)
+        block = np.pad(image, r, mode="symmetric")
+        vblock = None if valid is None else np.pad(valid, r, mode="symmetric")
+        out = self.magnify_block(block, r, vblock, consistency=consistency, ensemble=ensemble)
+        if valid is not None and not valid.all():
+            hr_valid = np.repeat(np.repeat(valid, s, axis=0), s, axis=1)
+            out[~hr_valid] = np.nan
+        return out
+
+    @staticmethod
+    def _check_image(image, name):
+        image = np.asarray(image)
+        if image.ndim != 2:
+            raise InputError(f"The {name!r} must be a 2-D array, got shape {image.shape}")
+        if image.size == 0:
+            raise InputError(f"The {name!r} must not be empty, got shape {image.shape}")
+        if not np.issubdtype(image.dtype, np.number) or np.iscomplexobj(image):
+            raise InputError(f"The {name!r} must hold real numbers, got dtype {image.dtype}")
+        return image
+
+    @staticmethod
+    def _valid_mask(image, valid):
+        finite = np.isfinite(image) if np.issubdtype(image.dtype, np.floating) else None
+        if valid is not None:
+            valid = np.asarray(valid, dtype=bool)
+            if valid.shape != image.shape:
+                raise InputError(
+                    f"The valid mask must have the image's shape {image.shape}, got {valid.shape}"
+                )
+            return valid if finite is None else valid & finite
+        if finite is not None and not finite.all():
+            return finite
+        return None
+
+    def magnify_block(self, block, halo, valid=None, *, consistency=False, ensemble=False):
+        """Magnify one window that carries its own context.
+
+        Parameters
+        ----------
+        block : ndarray, shape (h + 2*halo, w + 2*halo)
+            The low-res window plus ``halo`` pixels of context on each side;
+            outside the image the context is the symmetric extension of what
+            was read.
+        halo : int
+            At least :meth:`context_radius` for the same options (with
+            ``masked=True`` when ``valid`` marks invalid pixels).
+        valid : ndarray of bool, same shape, optional
+            Measured pixels.
+        consistency, ensemble : bool
+            As in :meth:`magnify`.
+
+        Returns
+        -------
+        ndarray, shape (scale*h, scale*w)
+            Exactly the part of ``magnify(whole_image)`` that covers the
+            window, to float rounding. Values under invalid pixels are
+            meaningless.
+        """
+        self._check_fitted()
+        block = self._check_image(block, "block")
+        dtype = _work_dtype(block)
+        block = block.astype(dtype, copy=False)
+        valid = self._valid_mask(block, valid)
+        masked = valid is not None and not valid.all()
+        need = self.context_radius(consistency=consistency, masked=masked)
+        halo = _check_int(halo, "halo", 0)
+        if halo < need:
+            raise ParameterError(
+                f"The 'halo' parameter must be at least the context radius {need}, got {halo}"
+            )
+        h, w = block.shape[0] - 2 * halo, block.shape[1] - 2 * halo
+        if h <= 0 or w <= 0:
+            raise InputError(
+                f"The block must be larger than twice the halo {halo}, got shape {block.shape}"
+            )
+        crop = halo - need
+        block = block[crop : block.shape[0] - crop, crop : block.shape[1] - crop]
+        if masked:
+            valid = valid[crop : valid.shape[0] - crop, crop : valid.shape[1] - crop]
+            if not valid.any():
+                return np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+            block = fill_invalid(block, valid)[FILL_DISTANCE:-FILL_DISTANCE, FILL_DISTANCE:-FILL_DISTANCE]
+            need -= FILL_DISTANCE
+        elif valid is not None:
+            block = np.where(valid, block, 0).astype(dtype, copy=False)
+        if not ensemble:
+            return self._magnify_padded(block, need, consistency)
+        acc = None
+        for k in range(8):
+            out = _dihedral_inverse(self._magnify_padded(_dihedral(block, k), need, consistency), k)
+            acc = out.copy() if acc is None else acc + out
+        return acc / dtype.type(8)
+
+    def _magnify_padded(self, block, halo, consistency):
+        """Magnify a block whose halo is exactly what the options need."""
+        s = self._scale
+        dtype = block.dtype
+        reach = self._consistency_reach() if consistency else 0
+        # The detail step produces the window plus ``reach`` cells of margin.
+        inner = halo - reach
+        base = FEATURE_RADIUS + PATCH_REACH
+        h = block.shape[0] - 2 * inner
+        w = block.shape[1] - 2 * inner
+        core = block[inner - base : inner - base + h + 2 * base, inner - base : inner - base + w + 2 * base]
+        out = self._synthesize(core, h, w, dtype)
+        if consistency:
+            out = self._make_consistent(out, block[inner:-inner or None, inner:-inner or None], reach)
+        return out
+
+    def _synthesize(self, core, h, w, dtype):
+        """Interpolation plus averaged detail for a core of halo FEATURE_RADIUS + 1."""
+        s = self._scale
+        r = FEATURE_RADIUS
+        base = r + PATCH_REACH
+        m = UPSCALE_MARGIN
+        y_l = upscale_valid(core[base - m : base + h + m, base - m : base + w + m], s, m)
+        # Centres -1 .. h need windows of radius r: rows base-1-r .. base+h+r.
+        lr = core[base - 1 - r : base + h + 1 + r, base - 1 - r : base + w + 1 + r]
+        kernel = self.feature_kernel_.astype(dtype, copy=False)
+        canvas = overlap_canvas(h, w, s, dtype)
+        wp = w + 2
+        rows_per_strip = max(1, _STRIP_CENTRES // wp)
+        size = 2 * r + 1
+        for c0 in range(0, h + 2, rows_per_strip):
+            c1 = min(h + 2, c0 + rows_per_strip)
+            windows = lowres_windows(lr[c0 : c1 - 1 + size])
+            # The kernel annihilates constants; removing the centre value makes
+            # that exact in floating point (a constant image stays constant).
+            windows = windows - windows[:, _CENTRE : _CENTRE + 1]
+            features = windows @ kernel.T
+            patches = self._predict(features).reshape(c1 - c0, wp, -1)
+            overlap_add(canvas, patches, c0)
+        return y_l + canvas_average(canvas)
+
+    def _predict(self, features):
+        """Detail patches (n, (3s)**2) for features (n, d)."""
+        dtype = features.dtype
+        dl = self.dictionary_low_.astype(dtype, copy=False)
+        if Method.parse(self.method, "method") is Method.SPARSE:
+            dh = self.dictionary_high_.T.astype(dtype, copy=False)  # (atoms, patch)
+            idx, coef = omp_codes(dl, features.T, _check_int(self.sparsity, "sparsity", 1, 64))
+            out = coef[:, :1] * dh[idx[:, 0]]
+            for t in range(1, idx.shape[1]):
+                out += coef[:, t : t + 1] * dh[idx[:, t]]
+            return out
+        corr = features @ dl
+        hi = corr.argmax(axis=1)
+        lo = corr.argmin(axis=1)
+        rows = np.arange(len(corr))
+        anchors = np.where(corr[rows, hi] >= -corr[rows, lo], hi, lo)
+        proj = self.projections_
+        out = np.empty((len(features), proj.shape[1]), dtype=dtype)
+        order = np.argsort(anchors, kind="stable")
+        bounds = np.searchsorted(anchors[order], np.arange(proj.shape[0] + 1))
+        with threadpool_limits(limits=1, user_api="blas"):
+            for j in np.flatnonzero(np.diff(bounds)):
+                sel = order[bounds[j] : bounds[j + 1]]
+                out[sel] = features[sel] @ proj[j].T.astype(dtype, copy=False)
+        return out
+
+    def _make_consistent(self, out, lr, reach):
+        """Back-project the degradation residual (see _CONSISTENCY_STEPS)."""
+        s = self._scale
+        deg = Degradation.parse(self.degradation, "degradation")
+        sigma = _check_sigma(s, deg, self.sigma)
+        if deg is Degradation.AREA:
+            resid = lr - out.reshape(lr.shape[0], s, lr.shape[1], s).mean(axis=(1, 3))
+            return out + np.repeat(np.repeat(resid, s, axis=0), s, axis=1)
+        left, right = degradation_margin(s, deg, sigma)
+        mc = math.ceil(max(left, right) / s)
+        m = UPSCALE_MARGIN
+        per_step = m + mc
+        for step in range(_CONSISTENCY_STEPS):
+            # out covers lr cells [reach - step*per_step ... ] shrinking each step.
+            shrink = per_step
+            resid = lr[mc : lr.shape[0] - mc, mc : lr.shape[1] - mc] - degrade_valid(out, s, deg, sigma, s * mc)
+            corr = upscale_valid(resid, s, m)
+            out = out[s * shrink : out.shape[0] - s * shrink, s * shrink : out.shape[1] - s * shrink] + corr
+            lr = lr[shrink : lr.shape[0] - shrink, shrink : lr.shape[1] - shrink]
+        return out
+
+    # ----------------------------------------------------------------- files
+    def _arrays(self):
+        self._check_fitted()
+        arrays = {
+            "feature_kernel": self.feature_kernel_,
+            "pca_eigenvalues": self.pca_eigenvalues_,
+            "dictionary_low": self.dictionary_low_,
+        }
+        if Method.parse(self.method, "method") is Method.SPARSE:
+            arrays["dictionary_high"] = self.dictionary_high_
+        else:
+            arrays["projections"] = self.projections_
+        return arrays
+
+    def _header_params(self):
+        params = self.get_params()
+        params = {k: (str(v) if isinstance(v, (Method, Degradation)) else v) for k, v in params.items()}
+        if not isinstance(params.get("random_state"), (int, np.integer, type(None))):
+            params["random_state"] = None
+        elif params.get("random_state") is not None:
+            params["random_state"] = int(params["random_state"])
+        return params
+
+    def _header(self):
+        return {"params": self._header_params(), "training": self.training_, "sha256": self.sha256_}
+
+    def save(self, path):
+        """Write the model to an ``.npz`` file (see :func:`save_models`)."""
+        save_models(path, [self])
+
+    @classmethod
+    def load(cls, path):
+        """Read a model file holding one model (see :func:`load_models`)."""
+        models = load_models(path)
+        if len(models) != 1:
+            raise ModelError(
+                f"The model file {os.fspath(path)!r} must hold one model, got {len(models)} "
+                "per-band models; use geosr.load_models()"
+            )
+        return models[0]
+
+
+#: Back-projection steps of the consistency option (a fixed count keeps the
+#: context radius, and so chunked output, exact).
+_CONSISTENCY_STEPS = 8
+
+
+# --------------------------------------------------------------- model files
+_ARRAY_NAMES = {
+    "sparse": ("feature_kernel", "pca_eigenvalues", "dictionary_low", "dictionary_high"),
+    "anchored": ("feature_kernel", "pca_eigenvalues", "dictionary_low", "projections"),
+}
+
+
+def _model_sha256(arrays, params):
+    """Checksum of a model's arrays and parameters (hand edits are detected)."""
+    digest = hashlib.sha256()
+    digest.update(json.dumps(params, sort_keys=True).encode())
+    for name in sorted(arrays):
+        a = np.ascontiguousarray(arrays[name])
+        digest.update(name.encode())
+        digest.update(str(a.dtype).encode())
+        digest.update(str(a.shape).encode())
+        digest.update(a.tobytes())
+    return digest.hexdigest()
+
+
+def save_models(path, models, band_names=None):
+    """Write one shared model or one model per band to an ``.npz`` file.
+
+    The file holds the learned arrays and a JSON header with the format
+    version, the geosr version, every parameter, the training provenance and
+    a sha256 of each model's arrays. It is written to a temporary file and
+    renamed into place.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+    models : sequence of CoupledDictionary
+        All fitted, all at one scale.
+    band_names : sequence of str, optional
+        One name per model, kept in the header.
+    """
+    models = list(models)
+    if not models:
+        raise ParameterError("The 'models' parameter must hold at least one model, got none")
+    scales = {m._scale for m in models}
+    if len(scales) != 1:
+        raise ParameterError(f"The models must share one scale, got scales {sorted(scales)}")
+    if band_names is not None and len(band_names) != len(models):
+        raise ParameterError(
+            f"The 'band_names' parameter must name each of the {len(models)} models, "
+            f"got {len(band_names)} names"
+        )
+    arrays = {}
+    entries = []
+    for n, model in enumerate(models):
+        for name, value in model._arrays().items():
+            arrays[f"m{n}_{name}"] = value
+        entry = model._header()
+        entry["band_name"] = None if band_names is None else str(band_names[n])
+        entries.append(entry)
+    header = {
+        "format": "geosr-model",
+        "format_version": FORMAT_VERSION,
+        "geosr_version": _version.__version__,
+        "scale": scales.pop(),
+        "models": entries,
+    }
+    arrays["header"] = np.array(json.dumps(header, sort_keys=True))
+    path = os.fspath(path)
+    folder = os.path.dirname(os.path.abspath(path))
+    fd, tmp = tempfile.mkstemp(prefix=".geosr-model-", suffix=".npz", dir=folder)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            np.savez_compressed(fh, **arrays)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+
+
+def load_models(path):
+    """Read a model file written by :func:`save_models`.
+
+    Never unpickles; checks the format version, the shapes, finiteness and
+    the sha256 of every model, and warns when the file was written by
+    another geosr version.
+
+    Returns
+    -------
+    list of CoupledDictionary
+        One shared model, or one per band.
+    """
+    path = os.fspath(path)
+    where = f"The model file {path!r}"
+    if not os.path.exists(path):
+        raise ModelError(f"{where} must exist, got no such file")
+    if os.path.isdir(path):
+        raise ModelError(f"{where} must be a file, got a directory")
+    try:
+        with np.load(path, allow_pickle=False) as npz:
+            arrays = {k: npz[k] for k in npz.files}
+    except Exception as exc:  # zip, npy or pickle errors all mean a damaged file
+        raise ModelError(f"{where} must be a geosr .npz model, got an unreadable file ({exc})") from None
+    try:
+        header = json.loads(str(arrays.pop("header")))
+    except Exception:
+        raise ModelError(f"{where} must carry a geosr JSON header, got none or a damaged one") from None
+    if not isinstance(header, dict) or header.get("format") != "geosr-model":
+        raise ModelError(f"{where} must be a geosr model, got another kind of file")
+    version = header.get("format_version")
+    if not isinstance(version, int) or version > FORMAT_VERSION or version < 1:
+        raise ModelError(
+            f"{where} must have format version 1 to {FORMAT_VERSION}, got {version!r}; "
+            "it was written by a newer geosr"
+        )
+    if header.get("geosr_version") != _version.__version__:
+        warnings.warn(
+            f"{where} was written by geosr {header.get('geosr_version')}, "
+            f"this is geosr {_version.__version__}",
+            UserWarning,
+            stacklevel=2,
+        )
+    entries = header.get("models")
+    if not isinstance(entries, list) or not entries:
+        raise ModelError(f"{where} must list at least one model, got none")
+    models = []
+    for n, entry in enumerate(entries):
+        try:
+            models.append(_model_from_entry(entry, n, arrays))
+        except ModelError as exc:
+            raise ModelError(f"{where}: {exc}") from None
+        except (ParameterError, KeyError, TypeError, ValueError) as exc:
+            raise ModelError(f"{where} must hold valid model parameters, got {exc}") from None
+    return models
+
+
+def _model_from_entry(entry, n, arrays):
+    params = dict(entry["params"])
+    known = set(CoupledDictionary().get_params())
+    unknown = set(params) - known
+    if unknown:
+        raise ModelError(f"model {n} must have known parameters, got {sorted(unknown)}")
+    model = CoupledDictionary(**params)
+    p = model._validate_params()
+    names = _ARRAY_NAMES[str(p["method"])]
+    got = {}
+    for name in names:
+        key = f"m{n}_{name}"
+        if key not in arrays:
+            raise ModelError(f"model {n} must have the array {name!r}, got none")
+        a = arrays[key]
+        if a.dtype.kind != "f" or not np.isfinite(a).all():
+            raise ModelError(f"model {n} array {name!r} must hold finite floats, got {a.dtype} with non-finite values")
+        got[name] = a.astype(np.float32, copy=False)
+    if _model_sha256(got, model._header_params()) != entry.get("sha256"):
+        raise ModelError(f"model {n} arrays must match the checksum in the header, got different bytes")
+    s = p["scale"]
+    window = (2 * FEATURE_RADIUS + 1) ** 2
+    d = got["feature_kernel"].shape[0] if got["feature_kernel"].ndim == 2 else -1
+    k = got["dictionary_low"].shape[1] if got["dictionary_low"].ndim == 2 else -1
+    expected = {
+        "feature_kernel": (d, window),
+        "pca_eigenvalues": (d,),
+        "dictionary_low": (d, k),
+        "dictionary_high": ((3 * s) ** 2, k),
+        "projections": (k, (3 * s) ** 2, d),
+    }
+    for name in names:
+        if got[name].shape != expected[name] or d < 1 or k < 1:
+            raise ModelError(
+                f"model {n} array {name!r} must have shape {expected[name]}, got {got[name].shape}"
+            )
+    model.feature_kernel_ = got["feature_kernel"]
+    model.pca_eigenvalues_ = got["pca_eigenvalues"]
+    model.dictionary_low_ = got["dictionary_low"]
+    if "dictionary_high" in got:
+        model.dictionary_high_ = got["dictionary_high"]
+    else:
+        model.projections_ = got["projections"]
+    model.training_ = dict(entry.get("training") or {})
+    model.sha256_ = entry["sha256"]
+    model.band_name_ = entry.get("band_name")
+    return model
+
+
+def default_model_path(scale):
+    """Path of the model shipped in the package for a scale factor."""
+    scale = check_scale(scale)
+    return resources.files("geosr") / "models" / f"default-x{scale}.npz"
+
+
+def default_model(scale):
+    """The model shipped in the package for ``scale`` (2, 3 or 4)."""
+    path = default_model_path(scale)
+    if not path.is_file():
+        raise ModelError(
+            f"The 'scale' parameter must be one with a shipped model (2, 3 or 4), got {scale}; "
+            "train a model with 'geosr train' for other scales"
+        )
+    return CoupledDictionary.load(str(path))
