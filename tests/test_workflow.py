@@ -654,3 +654,20 @@ def test_interrupt_leaves_no_output(make_raster, run_dir, tmp_path, sig):
     assert proc.returncode != 0
     assert list_dir(run_dir) == []
     assert sha256_of(src) == before
+
+
+def test_damaged_inner_tile_fails_in_its_task_and_leaves_nothing(make_raster, run_dir, tiny_model):
+    src = make_raster(camera(96, 96).astype(np.uint8), tiled=True, blockxsize=16, blockysize=16,
+                      compress="deflate")
+    raw = bytearray(src.read_bytes())
+    with rasterio.open(src) as s:
+        s.read(window=((80, 96), (80, 96)))  # the last tile is intact, so opening passes
+    mid = len(raw) // 2
+    raw[mid : mid + 64] = b"\xff" * 64  # garble a tile in the middle of the file
+    src.write_bytes(bytes(raw))
+    from geosr.raster.io import inspect_source
+
+    inspect_source(src)  # still opens and its last block decodes
+    with pytest.raises(InputError, match="read error in rows"):
+        magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True, chunk_size=16, retries=1)
+    assert list_dir(run_dir) == []

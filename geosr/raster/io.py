@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import logging
 import os
 import re
 import secrets
@@ -162,15 +163,60 @@ def open_source(path):
         if not os.access(text, os.R_OK):
             raise InputError(f"{where} must be readable, got a file without read permission")
     try:
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(), _io_warnings() as problems:
             warnings.simplefilter("ignore", NotGeoreferencedWarning)
             dataset = rasterio.open(text, "r")
     except RasterioError as exc:
         raise InputError(f"{where} must be a raster that GDAL can read, got an error: {exc}") from None
+    if problems:
+        dataset.close()
+        raise InputError(
+            f"{where} must be an intact raster, got a damaged or truncated file: {problems[0]}"
+        )
     try:
         yield dataset
     finally:
         dataset.close()
+
+
+class _IOProblems(logging.Handler):
+    """Collects GDAL's warnings about I/O errors while a file is opened."""
+
+    def __init__(self):
+        super().__init__(level=logging.WARNING)
+        self.messages = []
+
+    def emit(self, record):
+        msg = record.getMessage()
+        if "IO error" in msg or "truncated" in msg.lower() or "Cannot read" in msg:
+            self.messages.append(msg.split(": ", 1)[-1])
+
+
+@contextlib.contextmanager
+def _io_warnings():
+    handler = _IOProblems()
+    logger = logging.getLogger("rasterio._env")
+    logger.addHandler(handler)
+    try:
+        yield handler.messages
+    finally:
+        logger.removeHandler(handler)
+
+
+def _probe(ds, where):
+    """Decode the last block of the raster: truncation and damage show at once."""
+    from rasterio.windows import Window
+
+    try:
+        with _io_warnings() as problems:
+            ds.read(window=Window(ds.width - 1, ds.height - 1, 1, 1))
+    except RasterioError as exc:
+        problems = [str(exc)]
+    if problems:
+        raise InputError(
+            f"{where} must be readable, got a read error in its last block "
+            f"(damaged or truncated file?): {problems[0]}"
+        )
 
 
 def inspect_source(path):
@@ -203,6 +249,7 @@ def inspect_source(path):
                     f"{where} must have bands of a supported pixel type "
                     f"({', '.join(SUPPORTED_DTYPES)}), got {dtype} in band {band}"
                 )
+        _probe(ds, where)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", NotGeoreferencedWarning)
             gcps, gcps_crs = ds.gcps
