@@ -24,6 +24,23 @@ from . import options
     default=False,
     help="Learn the model from SRC itself (degrade it, learn, apply) instead of --model.",
 )
+@click.option(
+    "--atoms",
+    "train_atoms",
+    type=options.IntAtLeast(2),
+    default=None,
+    metavar="N",
+    help="With --self-train: dictionary size. Default 1000.",
+)
+@click.option(
+    "--samples",
+    "train_samples",
+    type=options.IntAtLeast(10),
+    default=None,
+    metavar="N",
+    help="With --self-train: training patches drawn from SRC. Default 100000.",
+)
+@options.degradation_option
 @options.scale_option(
     required=False,
     help="Integer magnification factor, 2 to 8. Default: the scale of --model.",
@@ -69,7 +86,7 @@ from . import options
 @options.config_option
 @options.quiet_option
 @click.pass_context
-def magnify(ctx, src, dst, model, self_train, scale, method, bands, chunk, workers,
+def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degradation, scale, method, bands, chunk, workers,
             scheduler, creation_options, cog, overwrite, consistency, ensemble, stac,
             max_output_bytes, quiet):
     """Magnify the raster SRC by an integer factor into DST.
@@ -92,8 +109,23 @@ def magnify(ctx, src, dst, model, self_train, scale, method, bands, chunk, worke
             "when neither --model nor --self-train is given",
             ctx=ctx,
         )
+    training = {
+        k: v
+        for k, v in (("n_atoms", train_atoms), ("max_samples", train_samples),
+                     ("degradation", degradation))
+        if v is not None
+    }
+    if training and not self_train:
+        names = {"n_atoms": "--atoms", "max_samples": "--samples", "degradation": "--degradation"}
+        given = ", ".join(names[k] for k in training)
+        raise click.UsageError(f"{given} only apply with --self-train, got them without it", ctx=ctx)
+    if training:
+        extra = {"training": training}
+    else:
+        extra = {}
     magnify_raster = options.library_function("geosr.workflow", "magnify_raster")
-    extra = {} if max_output_bytes is None else {"max_output_bytes": max_output_bytes}
+    if max_output_bytes is not None:
+        extra["max_output_bytes"] = max_output_bytes
     result = options.call_library(
         magnify_raster,
         src,

@@ -69,6 +69,16 @@ def option_key(param):
     return (longs[0] if longs else param.opts[0]).lstrip("-")
 
 
+def _fail_from_config(message, param, ctx):
+    """Raise the config-file form of a bad value when it came from the file."""
+    if _from_config(ctx, param):
+        raise click.UsageError(
+            f"Invalid value for the key {option_key(param)!r} in the config file "
+            f"{ctx.meta[_CONFIG_META]}: {message}",
+            ctx=ctx,
+        )
+
+
 class _GeosrType(click.ParamType):
     """Base of the geosr parameter types: failures name the config key when
     the value came from the ``--config`` file."""
@@ -77,12 +87,7 @@ class _GeosrType(click.ParamType):
     config_kind = "str"
 
     def fail(self, message, param=None, ctx=None):
-        if _from_config(ctx, param):
-            raise click.UsageError(
-                f"Invalid value for the key {option_key(param)!r} in the config file "
-                f"{ctx.meta[_CONFIG_META]}: {message}",
-                ctx=ctx,
-            )
+        _fail_from_config(message, param, ctx)
         super().fail(message, param, ctx)
 
 
@@ -262,7 +267,8 @@ class _ChoiceType(click.Choice):
         super().__init__([m.value for m in enum], case_sensitive=False)
 
     def fail(self, message, param=None, ctx=None):
-        _GeosrType.fail(self, message, param, ctx)
+        _fail_from_config(message, param, ctx)
+        super().fail(message, param, ctx)
 
 
 # ----------------------------------------------------------------- options

@@ -59,6 +59,13 @@ from . import options
     help="K-SVD iterations. Default 40.",
 )
 @click.option(
+    "--neighbours",
+    type=options.IntAtLeast(1),
+    default=None,
+    metavar="N",
+    help="Training features per anchor of the anchored method. Default 2048.",
+)
+@click.option(
     "--samples",
     "max_samples",
     type=options.IntAtLeast(10),
@@ -82,7 +89,7 @@ from . import options
 @options.quiet_option
 @click.pass_context
 def train(ctx, references, output, scale, bands, shared, method, degradation, sigma,
-          n_atoms, sparsity, n_iter, max_samples, random_state, chunk, workers,
+          n_atoms, sparsity, n_iter, neighbours, max_samples, random_state, chunk, workers,
           scheduler, overwrite, quiet):
     """Learn a model from the high-resolution rasters HR_RASTER and write it to MODEL.
 
@@ -116,6 +123,7 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
         "n_atoms": n_atoms,
         "sparsity": sparsity,
         "n_iter": n_iter,
+        "neighbours": neighbours,
         "max_samples": max_samples,
     }
     result = options.call_library(
