@@ -1,0 +1,188 @@
+"""The scheduling layer: local and distributed runs, streaming, retries, progress."""
+
+import io
+import os
+import threading
+import time
+
+import numpy as np
+import pytest
+
+from geosr.errors import DestinationError, InputError, ParameterError, RunError
+from geosr.progress import Progress, format_duration
+from geosr.schedule import resolve_scheduler, run_tasks
+
+
+# Task functions live at module level: worker processes import them by name.
+def square(job, shared):
+    return job, job * job + shared["offset"]
+
+
+def pid_task(job, shared):
+    return job, os.getpid(), shared["offset"]
+
+
+def slow_square(job, shared):
+    time.sleep(0.01)
+    shared["log"].append(("run", job))
+    return job, job * job
+
+
+def flaky(job, shared):
+    with shared["lock"]:
+        shared["attempts"][job] = shared["attempts"].get(job, 0) + 1
+        first = shared["attempts"][job] == 1
+    if first:
+        raise OSError("transient failure")
+    return job
+
+
+def refuses(job, shared):
+    with shared["lock"]:
+        shared["attempts"][job] = shared["attempts"].get(job, 0) + 1
+    raise InputError("The block must be readable, got damage")
+
+
+def dies_once(job, shared):
+    marker = os.path.join(shared["dir"], "died")
+    if job == 3 and not os.path.exists(marker):
+        open(marker, "w").close()
+        os._exit(1)  # the worker process dies mid-task
+    return job, job * 10
+
+
+def test_resolve_scheduler():
+    assert resolve_scheduler().kind == "threads"
+    assert resolve_scheduler(workers=3).kind == "local-cluster"
+    assert resolve_scheduler("processes", 2).workers == 2
+    assert resolve_scheduler("sync").kind == "synchronous"
+    spec = resolve_scheduler("tcp://10.0.0.5:8786")
+    assert spec.kind == "distributed" and spec.address == "tcp://10.0.0.5:8786"
+    with pytest.raises(ParameterError, match="workers"):
+        resolve_scheduler("tcp://10.0.0.5:8786", 2)
+    for bad in ("gpu", 3):
+        with pytest.raises(ParameterError, match="scheduler"):
+            resolve_scheduler(bad)
+    for bad in (0, -1, 2.5, True):
+        with pytest.raises(ParameterError, match="workers"):
+            resolve_scheduler(None, bad)
+
+
+@pytest.mark.parametrize("scheduler", ["threads", "synchronous"])
+def test_every_result_consumed_in_the_calling_thread(scheduler):
+    seen, threads = {}, set()
+
+    def consume(result):
+        threads.add(threading.current_thread())
+        seen[result[0]] = result[1]
+
+    bar = Progress(20, quiet=True)
+    n = run_tasks(square, range(20), {"offset": 1}, consume, scheduler=scheduler, progress=bar)
+    assert n == 20 and bar.done == 20
+    assert seen == {i: i * i + 1 for i in range(20)}
+    assert threads == {threading.current_thread()}
+
+
+def test_results_stream_while_tasks_run():
+    shared = {"log": []}
+    run_tasks(slow_square, range(6), shared, lambda r: shared["log"].append(("consume", r[0])),
+              scheduler="synchronous")
+    # One task, then its result written, then the next: nothing piles up.
+    log = shared["log"]
+    assert len(log) == 12
+    for k in range(0, 12, 2):
+        assert log[k][0] == "run" and log[k + 1] == ("consume", log[k][1])
+
+
+def test_memory_bounded_by_workers_in_flight():
+    state = {"produced": 0, "consumed": 0, "peak": 0, "lock": threading.Lock()}
+
+    def consume(result):
+        state["consumed"] += 1
+
+    def produce(job, shared):
+        time.sleep(0.005)
+        with state["lock"]:
+            state["produced"] += 1
+            state["peak"] = max(state["peak"], state["produced"] - state["consumed"])
+        return np.zeros(1000)
+
+    run_tasks(_Wrapped(produce), range(40), None, consume, scheduler="threads", workers=2)
+    assert state["consumed"] == 40
+    assert state["peak"] <= 2 + 1  # at most the tasks in flight are waiting for the writer
+
+
+class _Wrapped:
+    """A picklable-enough callable for the threads scheduler."""
+
+    def __init__(self, fn):
+        self.fn = fn
+
+    def __call__(self, job, shared):
+        return self.fn(job, shared)
+
+
+def test_retries_and_errors():
+    shared = {"attempts": {}, "lock": threading.Lock()}
+    got = []
+    run_tasks(flaky, range(5), shared, got.append, scheduler="threads", retries=1)
+    assert sorted(got) == list(range(5)) and set(shared["attempts"].values()) == {2}
+    shared["attempts"].clear()
+    with pytest.raises(RunError, match="transient failure"):
+        run_tasks(flaky, range(5), shared, got.append, scheduler="threads", retries=0)
+    shared["attempts"].clear()
+    with pytest.raises(InputError, match="damage"):
+        run_tasks(refuses, range(3), shared, got.append, scheduler="threads", workers=1, retries=3)
+    assert set(shared["attempts"].values()) == {1}  # geosr's own verdicts are not retried
+    with pytest.raises(ParameterError, match="retries"):
+        run_tasks(square, [1], {"offset": 0}, got.append, retries=-1)
+
+
+def test_consumer_error_stops_the_run():
+    def consume(result):
+        raise DestinationError("The destination must be writable, got a full disk")
+
+    with pytest.raises(DestinationError, match="full disk"):
+        run_tasks(square, range(10), {"offset": 0}, consume, scheduler="threads")
+
+
+@pytest.mark.slow
+def test_processes_scheduler_shares_once_per_worker():
+    got = []
+    run_tasks(pid_task, range(8), {"offset": 7}, got.append, scheduler="processes", workers=2)
+    assert sorted(j for j, _, _ in got) == list(range(8))
+    assert {o for _, _, o in got} == {7}
+    pids = {p for _, p, _ in got}
+    assert os.getpid() not in pids and 1 <= len(pids) <= 2
+
+
+@pytest.mark.slow
+@pytest.mark.cluster
+def test_local_cluster_run_and_a_killed_worker(tmp_path):
+    got = []
+    bar = Progress(12, quiet=True)
+    run_tasks(dies_once, range(12), {"dir": str(tmp_path)}, got.append, workers=2, retries=2,
+              progress=bar)
+    assert (tmp_path / "died").exists()  # a worker really died mid-run
+    assert sorted(got) == [(i, 10 * i) for i in range(12)]
+    assert bar.done == 12
+
+
+def test_progress_text_and_quiet():
+    out = io.StringIO()
+    with Progress(4, "magnify", stream=out) as bar:
+        for _ in range(4):
+            bar.update()
+    text = out.getvalue()
+    assert "magnify: 0/4 blocks (0%)" in text and "magnify: 4/4 blocks (100%)" in text
+    assert "blocks/s" in text and "in all" in text
+    mid = Progress(10, "train", stream=io.StringIO())
+    mid.done = 5
+    mid.start -= 10.0  # 5 blocks in 10 s: 0.5 blocks/s, 10 s left
+    assert mid.text() .endswith("0.50 blocks/s, 10 s left")
+    quiet = io.StringIO()
+    with Progress(3, stream=quiet, quiet=True) as bar:
+        bar.update(3)
+    assert quiet.getvalue() == ""
+    assert format_duration(42) == "42 s" and format_duration(185) == "3 min 05 s"
+    assert format_duration(7620) == "2 h 07 min" and format_duration(float("inf")) == "?"
