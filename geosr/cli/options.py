@@ -425,12 +425,8 @@ def _is_set(value):
     return value is not None and value is not False and value != ()
 
 
-def _describe(ctx, name):
-    """How to name a parameter in a message: '--self-train' or the config key."""
-    param = next(p for p in ctx.command.params if p.name == name)
-    if ctx.get_parameter_source(name) == ParameterSource.DEFAULT_MAP:
-        return f"the config key {option_key(param)!r}"
-    return f"--{option_key(param)}"
+def _option(ctx, name):
+    return next(p for p in ctx.command.params if p.name == name)
 
 
 def exclusive(ctx, first, second):
@@ -457,10 +453,15 @@ def exclusive(ctx, first, second):
         return a, unset_b
     if src_b in explicit and src_a not in explicit:
         return unset_a, b
+    key_a, key_b = option_key(_option(ctx, first)), option_key(_option(ctx, second))
+    if src_a in explicit:
+        names = f"--{key_a} and --{key_b} are"
+    else:
+        names = (
+            f"The config keys {key_a!r} and {key_b!r} in {ctx.meta.get(_CONFIG_META)} are"
+        )
     raise click.UsageError(
-        f"{_describe(ctx, first)} and {_describe(ctx, second)} are mutually exclusive; "
-        f"give only one, got {a!r} and {b!r}",
-        ctx=ctx,
+        f"{names} mutually exclusive; give only one, got {a!r} and {b!r}", ctx=ctx
     )
 
 
