@@ -361,7 +361,9 @@ class CoupledDictionary(BaseEstimator):
         rng = _rng(self.random_state if random_state is None else random_state)
         block = block.astype(np.float64)
         valid = valid & np.isfinite(block)
-        samples = [self._pairs_from_block(block, halo, valid, p)]
+        # Candidate centres per copy: enough to keep max_pairs after the flat ones go.
+        budget = None if max_pairs is None else 3 * int(max_pairs) // p["rescaled_copies"] + 1
+        samples = [self._pairs_from_block(block, halo, valid, p, budget, rng)]
         for k in range(1, p["rescaled_copies"]):
             factor = _RESCALE_STEP**k
             inner = block[halo:-halo, halo:-halo]
@@ -372,7 +374,7 @@ class CoupledDictionary(BaseEstimator):
                 break
             small_block = np.pad(small, need, mode="symmetric")
             small_valid = np.pad(small_valid, need, mode="symmetric")
-            samples.append(self._pairs_from_block(small_block, need, small_valid, p))
+            samples.append(self._pairs_from_block(small_block, need, small_valid, p, budget, rng))
         windows = np.concatenate([w for w, _ in samples])
         details = np.concatenate([d for _, d in samples])
         if max_pairs is not None and len(windows) > max_pairs:
@@ -380,7 +382,7 @@ class CoupledDictionary(BaseEstimator):
             windows, details = windows[keep], details[keep]
         return PairSample(windows, details, s, 1)
 
-    def _pairs_from_block(self, block, halo, valid, p):
+    def _pairs_from_block(self, block, halo, valid, p, budget, rng):
         s = p["scale"]
         r = FEATURE_RADIUS
         margin_cells = halo // s - r
@@ -423,13 +425,16 @@ class CoupledDictionary(BaseEstimator):
         ci, cj = ci.ravel(), cj.ravel()
         keep = ~bad_centre[ci, cj]
         ci, cj = ci[keep], cj[keep]
+        if budget is not None and len(ci) > budget:
+            pick = np.sort(rng.choice(len(ci), size=budget, replace=False))
+            ci, cj = ci[pick], cj[pick]
         if len(ci) == 0:
             return empty
         all_windows = lowres_windows(lr)  # one row per cell 0..rows-1 x 0..cols-1
         windows = all_windows[ci * cols + cj]
         kernel = raw_feature_kernel(s)
         gram = kernel.T @ kernel
-        norms = np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", windows, gram, windows), 0.0))
+        norms = np.sqrt(np.maximum(np.sum((windows @ gram) * windows, axis=1), 0.0))
         textured = norms > _FLAT_FRACTION * norms.mean() if norms.mean() > 0 else norms > 0
         windows = windows[textured]
         details = detail_patches(detail, s, ci[textured], cj[textured])
