@@ -57,6 +57,7 @@ Working dtype: float32 when every input array is float32, float64 otherwise.
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import os
 import threading
 from concurrent.futures import ThreadPoolExecutor
@@ -466,6 +467,30 @@ def _omp_kernel(A, Xt, Dt, G, n_index, n_nonzero, tol, use_tol, eps, err_scale, 
 SUB_BLOCK = 256
 
 
+_POOL = {"pool": None, "size": 0, "pid": None}
+_POOL_LOCK = threading.Lock()
+
+
+def _worker_pool(n_threads):
+    """A persistent pool of at least ``n_threads`` threads (new after a fork).
+
+    Reusing threads spares the per-thread start-up of BLAS buffers on every
+    call; callers on several threads share it, which also bounds the total
+    number of coding threads.
+    """
+    with _POOL_LOCK:
+        if _POOL["pool"] is None or _POOL["pid"] != os.getpid() or _POOL["size"] < n_threads:
+            old = _POOL["pool"] if _POOL["pid"] == os.getpid() else None
+            _POOL.update(
+                pool=ThreadPoolExecutor(max_workers=n_threads, thread_name_prefix="geosr-omp"),
+                size=n_threads,
+                pid=os.getpid(),
+            )
+            if old is not None:
+                old.shutdown(wait=False)
+        return _POOL["pool"]
+
+
 def _omp_run(D, X, n_nonzero, tol, G, n_threads, block=BLOCK_SIGNALS):
     """Code the columns of ``X``; D and G already validated, in the working dtype.
 
@@ -518,10 +543,38 @@ def _omp_run(D, X, n_nonzero, tol, G, n_threads, block=BLOCK_SIGNALS):
             for s0 in starts:
                 work(s0)
         else:
-            with ThreadPoolExecutor(max_workers=min(n_threads, len(starts))) as pool:
-                for fut in [pool.submit(work, s0) for s0 in starts]:
+            pool = _worker_pool(n_threads)
+            futures = [pool.submit(work, s0) for s0 in starts]
+            try:
+                for fut in futures:
                     fut.result()
+            finally:
+                for fut in futures:
+                    fut.cancel()
     return idx, coef, cnt
+
+
+_GRAM_CACHE = {}
+_GRAM_CACHE_SIZE = 4
+_GRAM_LOCK = threading.Lock()
+
+
+def _cached_gram(D):
+    """``D^T D`` of a C-contiguous dictionary, remembered for the last few dictionaries.
+
+    Models code chunk after chunk over the same dictionary; the key is a
+    digest of the bytes, so an edited array is never served a stale Gram.
+    """
+    key = (D.shape, D.dtype.str, hashlib.blake2b(D.tobytes(), digest_size=16).digest())
+    with _GRAM_LOCK:
+        G = _GRAM_CACHE.get(key)
+    if G is None:
+        G = _gram(np.ascontiguousarray(D.T))
+        with _GRAM_LOCK:
+            while len(_GRAM_CACHE) >= _GRAM_CACHE_SIZE:
+                _GRAM_CACHE.pop(next(iter(_GRAM_CACHE)))
+            _GRAM_CACHE[key] = G
+    return G
 
 
 def _prepare(D, X, n_nonzero, tol, gram, n_threads):
@@ -534,7 +587,7 @@ def _prepare(D, X, n_nonzero, tol, gram, n_threads):
     n_nonzero = _check_n_nonzero(n_nonzero, n_features, n_atoms)
     tol = _check_tol(tol)
     n_threads = _check_n_threads(n_threads)
-    G = _gram(np.ascontiguousarray(D.T)) if gram is None else _check_gram(gram, n_atoms, dtype)
+    G = _cached_gram(D) if gram is None else _check_gram(gram, n_atoms, dtype)
     return D, X, n_nonzero, tol, G, n_threads
 
 
