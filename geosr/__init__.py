@@ -3,7 +3,7 @@
 The output's fine detail is synthesized by a statistical model, not measured.
 """
 
-from . import errors, sparse
+from . import errors, metrics, sparse
 from ._version import __version__
 from .errors import GeosrError
 from .model import CoupledDictionary, default_model, load_models, save_models
@@ -19,6 +19,7 @@ __all__ = [
     "errors",
     "load_models",
     "magnify_raster",
+    "metrics",
     "save_models",
     "sparse",
     "train_from_rasters",

@@ -20,7 +20,7 @@ from geosr.model import CoupledDictionary
 #: scikit-image bundled photos used for training (name -> loader).
 TRAINING_PHOTOS = [
     "camera", "chelsea", "coffee", "rocket", "brick", "gravel", "grass",
-    "hubble_deep_field", "immunohistochemistry", "clock", "moon", "cell", "retina",
+    "hubble_deep_field", "immunohistochemistry", "clock", "cell", "retina",
 ]
 
 
