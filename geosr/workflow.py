@@ -53,6 +53,7 @@ from .schedule import SchedulerSpec, resolve_scheduler, run_tasks
 
 __all__ = [
     "magnify_raster",
+    "magnify_array",
     "train_from_rasters",
     "MagnifyResult",
     "DEFAULT_MAX_OUTPUT_BYTES",
@@ -653,3 +654,90 @@ def train_from_rasters(
     if output is not None:
         save_models(output, models, band_names=names)
     return models
+
+
+def _array_block(plan, block, models):
+    """A block as float values with NaN where the output is invalid."""
+    from .raster.blocks import magnify_block_values
+
+    return magnify_block_values(plan, block, models)
+
+
+def magnify_array(src, model=None, *, scale=None, bands=None, chunk_size=1024,
+                  consistency=False, ensemble=False):
+    """The magnified raster as a lazy dask array, one task per block.
+
+    Each task reads its block plus the halo the model needs from ``src``
+    with its own rasterio handle, so computing the array (or any part of
+    it) gives exactly what :func:`magnify_raster` writes before the
+    conversion to the output pixel type.
+
+    Parameters
+    ----------
+    src : str or os.PathLike
+    model : CoupledDictionary, list of them, or path, optional
+        As in :func:`magnify_raster` (the shipped model for ``scale`` when
+        omitted).
+    scale : int, optional
+    bands : sequence of int or str, optional
+        Alpha bands are magnified by nearest neighbour.
+    chunk_size : int
+        Block side in source pixels; array chunks are ``scale`` times that.
+    consistency, ensemble : bool
+
+    Returns
+    -------
+    dask.array.Array, shape (bands, scale*height, scale*width)
+        float32 for float32 sources, float64 otherwise; NaN where the output
+        is invalid (nodata, masked, or not finite in the input).
+    """
+    import dask.array as da
+    from dask.base import tokenize
+
+    consistency = _check_bool(consistency, "consistency")
+    ensemble = _check_bool(ensemble, "ensemble")
+    if scale is not None:
+        scale = check_scale(scale)
+    check_chunk_size(chunk_size)
+    info = inspect_source(src)
+    band_sel = check_bands(bands, info.count)
+    alpha = tuple(b for b in band_sel if info.is_alpha(b))
+    model_bands = tuple(b for b in band_sel if not info.is_alpha(b))
+    if not model_bands:
+        raise ParameterError("The 'bands' parameter must select at least one band that is not alpha")
+    if model is None:
+        if scale is None:
+            raise ParameterError("The 'scale' parameter must be given when no model is, got None")
+        from .model import default_model
+
+        models = [default_model(scale)]
+    else:
+        models = _load_models(model)
+    scale = _check_models(models, scale, None, len(model_bands), model_bands)
+    shared = len(models) == 1
+    roles = tuple(-1 if b in alpha else (0 if shared else model_bands.index(b)) for b in band_sel)
+    masked = any(info.may_be_masked(b) for b in model_bands)
+    halo = max(int(m.context_radius(consistency=consistency, masked=masked)) for m in models)
+    chunk = check_chunk_size(chunk_size, halo)
+    mode, nodata = mask_mode(info, band_sel, alpha)
+    work = "float32" if all(info.dtypes[b - 1] == "float32" for b in band_sel) else "float64"
+    plan = BlockPlan(
+        path=info.path, height=info.height, width=info.width, bands=band_sel, roles=roles,
+        halo=halo, scale=scale, dtype=work, mode=mode, nodata=nodata,
+        masked=masked or mode is not MaskMode.NONE, consistency=consistency, ensemble=ensemble,
+    )
+    blocks = block_grid(info.height, info.width, chunk)
+    name = "geosr-magnify-" + tokenize(info.path, plan, [_model_sha(m) for m in models], chunk)
+    models_key = name + "-models"
+    rows = sorted({b.row_off for b in blocks})
+    cols = sorted({b.col_off for b in blocks})
+    dsk = {models_key: models}
+    for b in blocks:
+        dsk[(name, 0, rows.index(b.row_off), cols.index(b.col_off))] = (_array_block, plan, b, models_key)
+    heights = tuple(scale * min(chunk, info.height - r) for r in rows)
+    widths = tuple(scale * min(chunk, info.width - c) for c in cols)
+    chunks = ((len(band_sel),), heights, widths)
+    from dask.highlevelgraph import HighLevelGraph
+
+    graph = HighLevelGraph.from_collections(name, dsk, dependencies=())
+    return da.Array(graph, name, chunks, dtype=np.dtype(work))

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -15,6 +16,7 @@ import pytest
 import rasterio
 from affine import Affine
 from rasterio.crs import CRS
+from rasterio.errors import NotGeoreferencedWarning
 
 SHARED_DATA = Path(__file__).resolve().parent.parent.parent / "shared" / "data"
 
@@ -77,7 +79,8 @@ def make_raster(tmp_path):
         if transform is not None:
             prof["transform"] = transform
         prof.update(profile)
-        with rasterio.Env(GDAL_TIFF_INTERNAL_MASK=True):
+        with rasterio.Env(GDAL_TIFF_INTERNAL_MASK=True), warnings.catch_warnings():
+            warnings.simplefilter("ignore", NotGeoreferencedWarning)  # GCP-only rasters
             with rasterio.open(path, "w", **prof) as ds:
                 ds.write(data)
                 if mask is not None:

@@ -671,3 +671,70 @@ def test_damaged_inner_tile_fails_in_its_task_and_leaves_nothing(make_raster, ru
     with pytest.raises(InputError, match="read error in rows"):
         magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True, chunk_size=16, retries=1)
     assert list_dir(run_dir) == []
+
+
+def test_magnify_array_is_lazy_and_equals_the_written_raster(make_raster, run_dir, tiny_model):
+    import dask
+
+    from geosr.workflow import magnify_array
+
+    img = camera(45, 38).astype(np.float32)
+    img[10:14, 5:9] = np.nan
+    src = make_raster(img, nodata=float("nan"))
+    arr = magnify_array(src, tiny_model, chunk_size=16)
+    assert arr.shape == (1, 90, 76) and arr.dtype == np.float32
+    assert arr.chunks == ((1,), (32, 32, 26), (32, 32, 12))
+    whole = tiny_model.magnify(img)
+    got = arr.compute(scheduler="threads")
+    assert np.array_equal(np.isnan(got[0]), np.isnan(whole))
+    assert np.nanmax(np.abs(got[0] - whole)) <= 1e-3
+    # A slice computes only the blocks it needs.
+    part = arr[:, 40:60, 30:50]
+    assert len(dask.optimize(part)[0].__dask_graph__()) < len(arr.__dask_graph__())
+    assert np.allclose(part.compute(), got[:, 40:60, 30:50], equal_nan=True)
+    magnify_raster(src, run_dir / "o.tif", tiny_model, chunk_size=16, quiet=True)
+    written = _read(run_dir / "o.tif")[0]
+    assert np.array_equal(np.isnan(written), np.isnan(got))
+    assert np.nanmax(np.abs(written - got)) <= 1e-3  # BLAS threading may reorder sums
+
+
+def test_one_pixel_raster(make_raster, run_dir, tiny_model):
+    src = make_raster(np.array([[[37]]], np.uint8))
+    magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True)
+    out = _read(run_dir / "o.tif")[0]
+    assert out.shape == (1, 2, 2) and (out == 37).all()  # a constant stays constant
+
+
+def test_infinity_inside_valid_float_data(make_raster, run_dir, tiny_model):
+    img = camera(30, 30).astype(np.float32)
+    src_a = make_raster(img, name="a.tif")
+    bad = img.copy()
+    bad[12, 12] = np.inf
+    bad[3, 20] = -np.inf
+    src_b = make_raster(bad, name="b.tif")
+    magnify_raster(src_b, run_dir / "b.tif", tiny_model, quiet=True)
+    out = _read(run_dir / "b.tif")[0][0]
+    hr_bad = np.repeat(np.repeat(~np.isfinite(bad), 2, 0), 2, 1)
+    assert np.array_equal(np.isnan(out), hr_bad)  # invalid, and no infinity written
+    assert np.isfinite(out[~hr_bad]).all()
+    # The infinities do not leak: the result is the core's with those pixels masked.
+    ref = tiny_model.magnify(img, np.isfinite(bad))
+    assert np.nanmax(np.abs(out - ref)) <= 1e-3
+    magnify_raster(src_a, run_dir / "a.tif", tiny_model, quiet=True)
+
+
+def test_enormous_declared_size_refused_before_work(tmp_path, run_dir, tiny_model):
+    path = tmp_path / "huge.tif"
+    with rasterio.open(path, "w", driver="GTiff", width=400_000, height=400_000, count=1,
+                       dtype="uint8", blockysize=1000, sparse_ok=True, crs="EPSG:32618",
+                       transform=Affine(10, 0, 0, 0, -10, 0)):
+        pass
+    assert path.stat().st_size < 100_000  # a tiny file that declares 160 gigapixels
+    import resource
+
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # KiB on Linux
+    with pytest.raises(InputError, match="max_output_bytes"):
+        magnify_raster(path, run_dir / "o.tif", tiny_model, quiet=True)
+    # The high-water mark of this process did not move by a strip (400 MB).
+    assert resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - peak < 100 * 1024
+    assert list_dir(run_dir) == []

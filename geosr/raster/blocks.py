@@ -25,7 +25,14 @@ try:  # GDAL errors surface as these when rasterio does not wrap them
 except ImportError:  # pragma: no cover - older rasterio
     CPLE_BaseError = RasterioError
 
-__all__ = ["BlockPlan", "BlockResult", "read_block", "magnify_one_block", "READ_ERRORS"]
+__all__ = [
+    "BlockPlan",
+    "BlockResult",
+    "read_block",
+    "magnify_one_block",
+    "magnify_block_values",
+    "READ_ERRORS",
+]
 
 #: Exceptions that mean "GDAL could not read this window".
 READ_ERRORS = (RasterioError, CPLE_BaseError, OSError)
@@ -198,3 +205,39 @@ def magnify_one_block(plan, block, models):
     if plan.mode is MaskMode.MASK:
         mask = np.where(all_ok, 255, 0).astype(np.uint8)
     return BlockResult(block, out, mask, n_valid)
+
+
+def magnify_block_values(plan, block, models):
+    """Read and magnify one block; float values, NaN where invalid.
+
+    Parameters
+    ----------
+    plan : BlockPlan
+        ``plan.dtype`` is the float type of the result.
+    block : Block
+    models : sequence of model objects
+
+    Returns
+    -------
+    ndarray, shape (bands, scale*height, scale*width)
+    """
+    s, h = plan.scale, plan.halo
+    data, valid = read_block(plan.path, plan.bands, block, h, plan.height, plan.width,
+                             masked=plan.masked, retries=plan.read_retries)
+    inner = (slice(h, h + block.height), slice(h, h + block.width))
+    dtype = np.dtype(plan.dtype)
+    out = np.full((len(plan.bands), s * block.height, s * block.width), np.nan, dtype=dtype)
+    for i, role in enumerate(plan.roles):
+        v_in = valid[i][inner]
+        if role < 0:
+            out[i] = nearest_magnify(data[i][inner], s)
+            continue
+        if not v_in.any():
+            continue
+        v = None if valid[i].all() else valid[i]
+        values = models[role].magnify_block(
+            data[i], h, v, consistency=plan.consistency, ensemble=plan.ensemble
+        )
+        ok = nearest_magnify(v_in, s) & np.isfinite(values)
+        out[i][ok] = values[ok]
+    return out

@@ -203,10 +203,22 @@ def _io_warnings():
         logger.removeHandler(handler)
 
 
+#: The open-time probe skips blocks larger than this (a huge strip would be
+#: a large allocation; block reads during the run still find the damage).
+_PROBE_MAX_BYTES = 16 * 2**20
+
+
 def _probe(ds, where):
     """Decode the last block of the raster: truncation and damage show at once."""
     from rasterio.windows import Window
 
+    try:
+        bh, bw = ds.block_shapes[0]
+    except (RasterioError, IndexError):
+        return
+    itemsize = max(np.dtype(d).itemsize for d in ds.dtypes)
+    if bh * bw * itemsize * ds.count > _PROBE_MAX_BYTES:
+        return
     try:
         with _io_warnings() as problems:
             ds.read(window=Window(ds.width - 1, ds.height - 1, 1, 1))
