@@ -264,6 +264,36 @@ def test_concurrent_callers_share_and_restore_the_blas_limit():
     assert after == before
 
 
+def test_edited_dictionary_is_not_served_a_stale_gram():
+    D, X = _gaussian(30, 300, 50, seed=16)
+    first = sparse.batch_omp(D, X, 3).toarray()
+    D[:, [0, 1]] = D[:, [1, 0]]  # edit in place: same shape and dtype, new Gram
+    swapped = sparse.batch_omp(D, X, 3).toarray()
+    np.testing.assert_array_equal(swapped[[1, 0]], first[:2])
+    np.testing.assert_array_equal(swapped[2:], first[2:])
+
+
+def _code_in_child(queue, D, X):
+    queue.put(sparse.omp_codes(D, X, 3, n_threads=2)[0])
+
+
+@pytest.mark.skipif(not hasattr(__import__("os"), "fork"), reason="needs fork")
+def test_coding_works_in_a_forked_child():
+    # The coding threads do not survive a fork; the child must get its own.
+    import multiprocessing
+
+    D, X = _gaussian(30, 300, 2000, seed=17, dtype=np.float32)
+    ref = sparse.omp_codes(D, X, 3, n_threads=2)[0]  # the parent's pool exists now
+    ctx = multiprocessing.get_context("fork")
+    queue = ctx.Queue()
+    proc = ctx.Process(target=_code_in_child, args=(queue, D, X))
+    proc.start()
+    out = queue.get(timeout=60)
+    proc.join(timeout=60)
+    assert proc.exitcode == 0
+    np.testing.assert_array_equal(out, ref)
+
+
 def test_non_contiguous_input():
     D, X = _gaussian(30, 300, 400, seed=13)
     ref = sparse.batch_omp(D, X[:, ::2], 3).toarray()
