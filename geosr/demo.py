@@ -514,7 +514,7 @@ def degrade_scene(scene, scale=SCALE):
     out = np.clip(np.rint(low), 1, 65535).astype(np.uint16)
     out[:, ~valid] = NODATA
     lc = scene.landcover[scale // 2 :: scale, scale // 2 :: scale][:rows, :cols]
-    transform = scene.transform * Affine.scale(scale)
+    transform = scene.transform @ Affine.scale(scale)
     marks = {k: (r // scale, c // scale) for k, (r, c) in scene.landmarks.items()}
     return DemoScene(out, valid, lc, transform, scene.crs, scene.pixel * scale, marks)
 

@@ -17,6 +17,14 @@ from . import options
     help="Seed of the generated scene; the same seed gives the same files.",
 )
 @click.option(
+    "--size",
+    type=options.IntAtLeast(192),
+    default=768,
+    show_default=True,
+    metavar="PIXELS",
+    help="Side of the generated 3 m truth in pixels, a multiple of 3.",
+)
+@click.option(
     "--model",
     "-m",
     type=click.Path(exists=True, dir_okay=False),
@@ -26,7 +34,7 @@ from . import options
 )
 @options.quiet_option
 @click.pass_context
-def demo(ctx, outdir, seed, model, quiet):
+def demo(ctx, outdir, seed, size, model, quiet):
     """Generate an invented river valley, magnify it x3 and write a quick look.
 
     The scene is procedurally generated (no real place, no real data): 4 bands
@@ -37,12 +45,16 @@ def demo(ctx, outdir, seed, model, quiet):
     and the truth on the same detail. Earlier demo files in OUTDIR are
     replaced.
     """
-    from ..demo import run_demo
+    from ..demo import SCALE, run_demo
+
+    if size % SCALE:
+        raise click.BadParameter(f"must be a multiple of {SCALE}, got {size}", ctx=ctx,
+                                 param_hint="'--size'")
 
     def echo(message):
         options.report(ctx, f"geosr demo: {message}")
 
-    paths = run_demo(outdir, seed=seed, model=model, quiet=quiet, echo=echo)
+    paths = run_demo(outdir, seed=seed, size=size, model=model, quiet=quiet, echo=echo)
     click.echo(f"truth (3 m, generated):    {paths['truth']}")
     click.echo(f"input (9 m, degraded x3):  {paths['input']}")
     click.echo(f"geosr output (x3):         {paths['output']}")
