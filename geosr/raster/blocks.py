@@ -157,8 +157,37 @@ def read_block(path, bands, block, halo, height, width, *, masked=True, retries=
     return pad_symmetric(data, pads), pad_symmetric(valid, pads)
 
 
+def _block_values(plan, block, models, dtype):
+    """Magnified values of every band of a block and where they are valid.
+
+    Returns ``values`` of ``dtype`` (alpha bands hold their source values
+    replicated) and ``ok``, both of shape (bands, s*height, s*width).
+    """
+    s, h = plan.scale, plan.halo
+    data, valid = read_block(plan.path, plan.bands, block, h, plan.height, plan.width,
+                             masked=plan.masked, retries=plan.read_retries)
+    inner = (slice(h, h + block.height), slice(h, h + block.width))
+    shape = (len(plan.bands), s * block.height, s * block.width)
+    values = np.zeros(shape, dtype=dtype)
+    ok = np.zeros(shape, dtype=bool)
+    for i, role in enumerate(plan.roles):
+        v_in = valid[i][inner]
+        if role < 0:
+            values[i] = nearest_magnify(data[i][inner], s)
+            ok[i] = True
+            continue
+        if not v_in.any():
+            continue
+        v = None if valid[i].all() else valid[i]
+        values[i] = models[role].magnify_block(
+            data[i], h, v, consistency=plan.consistency, ensemble=plan.ensemble
+        )
+        ok[i] = nearest_magnify(v_in, s) & np.isfinite(values[i])
+    return values, ok
+
+
 def magnify_one_block(plan, block, models):
-    """Read, magnify and convert one block.
+    """Read, magnify and convert one block to the output pixel type.
 
     Parameters
     ----------
@@ -172,35 +201,20 @@ def magnify_one_block(plan, block, models):
     -------
     BlockResult
     """
-    s, h = plan.scale, plan.halo
-    data, valid = read_block(plan.path, plan.bands, block, h, plan.height, plan.width,
-                             masked=plan.masked, retries=plan.read_retries)
-    inner = (slice(h, h + block.height), slice(h, h + block.width))
     out_dtype = np.dtype(plan.dtype)
+    work = np.float32 if out_dtype == np.float32 else np.float64
+    values, ok = _block_values(plan, block, models, work)
     nodata = plan.nodata if plan.mode is MaskMode.NODATA else None
-    out = np.empty((len(plan.bands), s * block.height, s * block.width), dtype=out_dtype)
-    all_ok = np.ones(out.shape[1:], dtype=bool)
+    out = np.empty(values.shape, dtype=out_dtype)
+    all_ok = np.ones(values.shape[1:], dtype=bool)
     n_valid = 0
     for i, role in enumerate(plan.roles):
-        v_in = valid[i][inner]
-        ok = nearest_magnify(v_in, s)
         if role < 0:
-            values = nearest_magnify(data[i][inner], s).astype(np.float64)
-            ok = np.ones_like(ok)
-        elif not v_in.any():
-            values = np.zeros(ok.shape)
-        else:
-            v = None if valid[i].all() else valid[i]
-            values = models[role].magnify_block(
-                data[i], h, v, consistency=plan.consistency, ensemble=plan.ensemble
-            )
-        if role < 0:
-            band = values.astype(out_dtype)
-        else:
-            band, ok = to_output_dtype(values, ok, out_dtype, nodata)
-            all_ok &= ok
-            n_valid += int(ok.sum())
-        out[i] = band
+            out[i] = values[i].astype(out_dtype)
+            continue
+        out[i], band_ok = to_output_dtype(values[i], ok[i], out_dtype, nodata)
+        all_ok &= band_ok
+        n_valid += int(band_ok.sum())
     mask = None
     if plan.mode is MaskMode.MASK:
         mask = np.where(all_ok, 255, 0).astype(np.uint8)
@@ -221,23 +235,6 @@ def magnify_block_values(plan, block, models):
     -------
     ndarray, shape (bands, scale*height, scale*width)
     """
-    s, h = plan.scale, plan.halo
-    data, valid = read_block(plan.path, plan.bands, block, h, plan.height, plan.width,
-                             masked=plan.masked, retries=plan.read_retries)
-    inner = (slice(h, h + block.height), slice(h, h + block.width))
-    dtype = np.dtype(plan.dtype)
-    out = np.full((len(plan.bands), s * block.height, s * block.width), np.nan, dtype=dtype)
-    for i, role in enumerate(plan.roles):
-        v_in = valid[i][inner]
-        if role < 0:
-            out[i] = nearest_magnify(data[i][inner], s)
-            continue
-        if not v_in.any():
-            continue
-        v = None if valid[i].all() else valid[i]
-        values = models[role].magnify_block(
-            data[i], h, v, consistency=plan.consistency, ensemble=plan.ensemble
-        )
-        ok = nearest_magnify(v_in, s) & np.isfinite(values)
-        out[i][ok] = values[ok]
-    return out
+    values, ok = _block_values(plan, block, models, np.dtype(plan.dtype))
+    values[~ok] = np.nan
+    return values
