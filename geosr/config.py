@@ -69,6 +69,7 @@ KINDS = {
     "bands": "an array of band numbers, e.g. [1, 2, 3], or a string '1,2,3'",
     "key-value": "a table of creation options, e.g. { COMPRESS = \"ZSTD\" }, "
     "or an array of 'KEY=VALUE' strings",
+    "size": "a size such as \"500G\" or a whole number of bytes",
     "list-of-str": "an array of strings",
     "list-of-int": "an array of integers",
     "list-of-number": "an array of numbers",
@@ -159,6 +160,10 @@ def check_value(key, value, spec, path="<config>"):
             isinstance(v, int) and not isinstance(v, bool) for v in value
         ):
             return list(value)
+        raise _wrong(path, key, spec, value)
+    if kind == "size":
+        if isinstance(value, str) or (isinstance(value, int) and not isinstance(value, bool)):
+            return value
         raise _wrong(path, key, spec, value)
     if kind == "key-value":
         if isinstance(value, dict):

@@ -32,6 +32,7 @@ SCHEMA = {
     "bands": Key("bands", "bands"),
     "sigma": Key("sigma", "number"),
     "model": Key("model", "str"),
+    "max-output": Key("max_output_bytes", "size"),
 }
 
 
@@ -98,6 +99,7 @@ def test_unknown_key_names_the_key_the_file_and_a_suggestion(tmp_path):
         ("co = 5", ["'co'", "creation options", "an integer"]),
         ("co = { COMPRESS = [1] }", ["'COMPRESS'", "'co'", "an array"]),
         ("model = 1", ["'model'", "a string"]),
+        ("max-output = 1.5", ["'max-output'", "a size", "a float"]),
     ],
 )
 def test_wrong_types_name_the_key(tmp_path, text, needles):
@@ -144,6 +146,15 @@ def test_unreadable_files(tmp_path):
     binary.write_bytes(b"chunk = \xff\n")
     with pytest.raises(ParameterError):
         read_toml(binary)
+
+
+def test_sizes_from_the_file_reach_the_library_in_bytes(tmp_path, calls):
+    path = write(tmp_path, 'scale = 2\nmax-output = "2G"\n')
+    assert magnify("--config", path).exit_code == 0
+    assert calls[-1]["max_output_bytes"] == 2 * 2**30
+    path = write(tmp_path, "scale = 2\nmax-output = 4096\n")
+    assert magnify("--config", path).exit_code == 0
+    assert calls[-1]["max_output_bytes"] == 4096
 
 
 def test_check_value_key_value_forms():

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import click
 
+from ..enums import Degradation
 from . import options
 
 
@@ -48,7 +49,13 @@ def _assess_function():
     help="Learn the model from the degraded REFERENCE itself instead of --model.",
 )
 @options.method_option
-@options.degradation_option
+@click.option(
+    "--degradation",
+    type=options.EnumChoice(Degradation),
+    default=None,
+    help="How REFERENCE is degraded before it is magnified back (Wald's protocol): "
+    "'bicubic' (antialiased, default), 'gaussian' (point-spread function) or 'area' (block mean).",
+)
 @options.bands_option
 @click.option("--consistency", is_flag=True, default=False, help="Back-project the output.")
 @click.option("--ensemble", is_flag=True, default=False, help="Average the 8 flips and rotations.")

@@ -147,7 +147,7 @@ def format_card(card, width=78):
 
 
 @click.command(short_help="Print a model card.")
-@click.argument("model", required=False, metavar="MODEL")
+@click.argument("model", required=False, metavar="[MODEL]")
 @options.scale_option(
     required=False, help="Describe the model shipped in the package for this scale instead."
 )

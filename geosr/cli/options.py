@@ -28,6 +28,7 @@ __all__ = [
     "BandsType",
     "KeyValueType",
     "SchedulerAddress",
+    "EnumChoice",
     "ByteSize",
     "scale_option",
     "method_option",
@@ -246,7 +247,7 @@ class ByteSize(_GeosrType):
     """A size in bytes: ``500M``, ``300G``, ``1.5T`` or a plain number of bytes."""
 
     name = "size"
-    config_kind = "str"
+    config_kind = "size"
 
     def convert(self, value, param, ctx):
         if isinstance(value, int) and not isinstance(value, bool) and value > 0:
@@ -258,7 +259,7 @@ class ByteSize(_GeosrType):
         return int(float(match[1]) * _BYTE_UNITS[match[2]])
 
 
-class _ChoiceType(click.Choice):
+class EnumChoice(click.Choice):
     """A case-insensitive choice whose config failures name the key."""
 
     config_kind = "choice"
@@ -286,7 +287,7 @@ def scale_option(required=True, help=None):
 
 method_option = click.option(
     "--method",
-    type=_ChoiceType(Method),
+    type=EnumChoice(Method),
     default=None,
     help="How fine detail is synthesized: 'sparse' (OMP over coupled K-SVD "
     "dictionaries) or 'anchored' (A+, faster). Default: the model's own method.",
@@ -294,10 +295,11 @@ method_option = click.option(
 
 degradation_option = click.option(
     "--degradation",
-    type=_ChoiceType(Degradation),
+    type=EnumChoice(Degradation),
     default=None,
-    help="Degradation model used to make low-res training pairs: 'bicubic' "
-    "(antialiased, default), 'gaussian' (point-spread function) or 'area' (block mean).",
+    help="How coarse data forms from fine data, used to make training pairs: "
+    "'bicubic' (antialiased, default), 'gaussian' (point-spread function) or "
+    "'area' (block mean).",
 )
 
 bands_option = click.option(
@@ -306,7 +308,7 @@ bands_option = click.option(
     type=BandsType(),
     default=None,
     metavar="LIST",
-    help="Band numbers to use, starting at 1, e.g. '1,2,3'. Default: all bands.",
+    help="Band numbers to use, starting at 1, e.g. '1,2,4' or '1-3'. Default: all bands.",
 )
 
 #: Smallest block side (geosr.raster.windows.MIN_CHUNK).
@@ -374,9 +376,9 @@ def config_schema(command):
         choices = None
         if param.is_flag:
             kind = "bool"
-        elif isinstance(param.type, (_GeosrType, _ChoiceType)):
+        elif isinstance(param.type, (_GeosrType, EnumChoice)):
             kind = param.type.config_kind
-            if isinstance(param.type, _ChoiceType):
+            if isinstance(param.type, EnumChoice):
                 choices = tuple(param.type.choices)
         elif isinstance(param.type, click.types.IntParamType):
             kind = "int"
