@@ -927,6 +927,10 @@ def save_models(path, models, band_names=None):
     try:
         with os.fdopen(fd, "wb") as fh:
             np.savez_compressed(fh, **arrays)
+        # mkstemp makes the file private; give it the permissions of a normal file.
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(OSError):
