@@ -12,8 +12,10 @@ Where the tasks run (``scheduler``):
     dask's local threaded scheduler (the default; numpy and GDAL release
     the GIL). ``workers`` sets the thread count.
 ``"processes"``
-    dask's local multiprocessing scheduler over a pool of spawned worker
-    processes; the shared object (the models) is sent once per process.
+    dask's local multiprocessing scheduler over a pool of worker processes
+    forked from a clean fork server; the shared object (the models) is sent
+    once per process. As with any non-fork start method, a script that uses
+    it must guard its entry point with ``if __name__ == "__main__":``.
 ``"synchronous"``
     one task after the other in the calling thread (debugging).
 ``"tcp://host:port"`` (or a ``distributed.Client``)
