@@ -14,6 +14,7 @@ import warnings
 import numpy as np
 import pytest
 import rasterio
+import rasterio.warp
 from affine import Affine
 from rasterio.control import GroundControlPoint
 from rasterio.enums import ColorInterp, MaskFlags, Resampling
