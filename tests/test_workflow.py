@@ -741,3 +741,22 @@ def test_enormous_declared_size_refused_before_work(tmp_path, run_dir, tiny_mode
     # The high-water mark of this process did not move by a strip (400 MB).
     assert resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - peak < 100 * 1024
     assert list_dir(run_dir) == []
+
+
+def test_consistency_and_ensemble_chunked_equal_whole(make_raster, run_dir, tiny_model):
+    img = camera(50, 47).astype(np.float64)
+    src = make_raster(img)
+    # Float rasters may hold NaN anywhere, so their blocks carry the masked halo.
+    halo = tiny_model.context_radius(consistency=True, masked=True)
+    assert halo > tiny_model.context_radius(masked=True)  # the back-projection adds its own reach
+    with pytest.raises(ParameterError, match=f"halo of {halo} pixels"):
+        magnify_raster(src, run_dir / "x.tif", tiny_model, consistency=True, chunk_size=halo - 1,
+                       quiet=True)
+    res = magnify_raster(src, run_dir / "o.tif", tiny_model, consistency=True, ensemble=True,
+                         chunk_size=halo, quiet=True)
+    assert res.halo == halo and res.blocks == 4
+    out = _read(run_dir / "o.tif")[0][0]
+    ref = tiny_model.magnify(img, consistency=True, ensemble=True)
+    assert np.abs(out - ref).max() <= 1e-9
+    with rasterio.open(run_dir / "o.tif") as d:
+        assert d.tags()["GEOSR_CONSISTENCY"] == "yes" and d.tags()["GEOSR_ENSEMBLE"] == "yes"
