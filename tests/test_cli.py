@@ -284,15 +284,48 @@ def test_missing_library_function_is_a_clear_error(monkeypatch, tmp_path):
     assert_one_line_error(result, 1, "geosr.workflow.magnify_raster is not available")
 
 
-def test_assess_without_the_assessment_is_clear_or_runs(tmp_path, src):
+def test_assess_without_the_assessment_library_is_clear(monkeypatch, tmp_path):
     import geosr
 
-    result = run("assess", src, "-s", "2", "-o", tmp_path / "report", "--quiet")
-    if not hasattr(geosr, "assess_raster"):
-        assert_one_line_error(result, 1, "geosr assess", "assess_raster")
-    else:  # the assessment has landed: it must have written its report
-        assert result.exit_code == 0, result.stderr
-        assert (tmp_path / "report" / "metrics.json").is_file()
+    assess_module = pytest.importorskip("geosr.assess")
+    monkeypatch.delattr(assess_module, "assess_raster")
+    monkeypatch.delattr(geosr, "assess_raster", raising=False)
+    result = run("assess", tmp_path / "r.tif", "-s", "2", "-o", tmp_path / "report")
+    assert_one_line_error(result, 1, "'geosr assess' needs geosr.assess_raster")
+
+
+def test_assess_writes_the_report(make_raster, tmp_path, model_file):
+    pytest.importorskip("geosr.assess")
+    ref = make_raster(camera(64, 64).astype(np.uint8), name="ref.tif")
+    result = run("assess", ref, "-s", "2", "-o", tmp_path / "report", "--model", model_file)
+    assert result.exit_code == 0, result.stderr
+    metrics = json.loads((tmp_path / "report" / "metrics.json").read_text())
+    last = result.stderr.strip().splitlines()[-1]
+    assert last == (
+        f"geosr: PSNR {metrics['geosr']['overall']['psnr']:.2f} dB with geosr, "
+        f"{metrics['bicubic']['overall']['psnr']:.2f} dB with bicubic; report: "
+        f"{tmp_path / 'report' / 'report.md'}"
+    )
+    again = run("assess", ref, "-s", "2", "-o", tmp_path / "report", "--model", model_file)
+    assert_one_line_error(again, 1)  # an existing report needs --overwrite
+
+
+def test_assess_wiring(recorder):
+    assess_module = pytest.importorskip("geosr.assess")
+    calls = recorder(assess_module, "assess_raster")
+    result = run("assess", "ref.tif", "-s", "3", "-o", "rep", "--self-train", "--atoms", "64",
+                 "--degradation", "gaussian", "--sigma", "1.2", "--bands", "1-2", "--crop", "64",
+                 "--consistency", "-q")
+    assert result.exit_code == 0, result.stderr
+    (args, kw), = calls
+    assert args == ("ref.tif", "rep", 3)
+    assert kw == {
+        "model": None, "self_train": True, "method": None, "sigma": 1.2, "bands": [1, 2],
+        "consistency": True, "ensemble": False, "overwrite": False, "quiet": True,
+        "training": {"n_atoms": 64}, "degradation": "gaussian", "crop_size": 64,
+    }
+    result = run("assess", "ref.tif", "-s", "3", "-o", "rep", "--sigma", "1.2")
+    assert_one_line_error(result, 2, "--sigma", "gaussian")
 
 
 # ------------------------------------------------------------- wiring
@@ -346,7 +379,7 @@ def test_local_scheduler_names_combine_with_workers(recorder):
 def test_unsupported_keyword_is_refused_only_when_set(monkeypatch):
     seen = []
 
-    def older(src, dst, model=None, *, scale=None, chunk_size=1024, quiet=False):
+    def older(src, dst, model=None, *, scale=None, quiet=False):
         seen.append((scale, quiet))
 
     monkeypatch.setattr(geosr.workflow, "magnify_raster", older)
@@ -354,6 +387,8 @@ def test_unsupported_keyword_is_refused_only_when_set(monkeypatch):
     assert result.exit_code == 0 and seen == [(2, False)]
     result = run("magnify", "in.tif", "out.tif", "-s", "2", "--ensemble")
     assert_one_line_error(result, 1, "'ensemble' is not supported")
+    result = run("magnify", "in.tif", "out.tif", "-s", "2", "--chunk", "1024")  # given: refused
+    assert_one_line_error(result, 1, "'chunk-size' is not supported")
 
 
 def test_train_passes_model_parameters(recorder, tmp_path):
@@ -452,8 +487,14 @@ def _console(name):
     return str(path)
 
 
-@pytest.mark.slow  # two process starts (importing geosr loads sklearn, numba, dask)
-def test_console_script_errors_are_one_line(tmp_path):
+@pytest.mark.slow  # three process starts (importing geosr loads sklearn, numba, dask)
+def test_console_script_happy_path_and_errors(tmp_path, src, model_file):
+    out = tmp_path / "out.tif"
+    proc = subprocess.run([_console("geosr"), "magnify", str(src), str(out), "--model",
+                           str(model_file), "--quiet"], capture_output=True, text=True)
+    assert proc.returncode == 0 and proc.stderr == "" and proc.stdout == "", proc.stderr
+    with rasterio.open(src) as s, rasterio.open(out) as o:
+        assert (o.width, o.height) == (2 * s.width, 2 * s.height) and o.crs == s.crs
     proc = subprocess.run([_console("geosr"), "magnify", str(tmp_path / "a.tif"),
                            str(tmp_path / "b.tif"), "--scale", "11"],
                           capture_output=True, text=True)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+
 import click
 
 from ..enums import Degradation
@@ -12,7 +14,7 @@ def _assess_function():
     """geosr.assess_raster wherever this installation has it."""
     from ..errors import RunError
 
-    for module in ("geosr", "geosr.assess", "geosr.assessment"):
+    for module in ("geosr.assess", "geosr"):
         try:
             return options.library_function(module, "assess_raster")
         except RunError:
@@ -48,6 +50,22 @@ def _assess_function():
     default=False,
     help="Learn the model from the degraded REFERENCE itself instead of --model.",
 )
+@click.option(
+    "--atoms",
+    "train_atoms",
+    type=options.IntAtLeast(2),
+    default=None,
+    metavar="N",
+    help="With --self-train: dictionary size.",
+)
+@click.option(
+    "--samples",
+    "train_samples",
+    type=options.IntAtLeast(10),
+    default=None,
+    metavar="N",
+    help="With --self-train: training patches drawn from the degraded REFERENCE.",
+)
 @options.method_option
 @click.option(
     "--degradation",
@@ -56,29 +74,56 @@ def _assess_function():
     help="How REFERENCE is degraded before it is magnified back (Wald's protocol): "
     "'bicubic' (antialiased, default), 'gaussian' (point-spread function) or 'area' (block mean).",
 )
+@click.option(
+    "--sigma",
+    type=click.FloatRange(min=0.0, min_open=True),
+    default=None,
+    help="Width of the Gaussian point-spread function in high-res pixels (--degradation gaussian).",
+)
 @options.bands_option
 @click.option("--consistency", is_flag=True, default=False, help="Back-project the output.")
 @click.option("--ensemble", is_flag=True, default=False, help="Average the 8 flips and rotations.")
-@options.chunk_option
-@options.workers_option
-@options.scheduler_option
+@click.option(
+    "--crop",
+    "crop_size",
+    type=options.IntAtLeast(8),
+    default=None,
+    metavar="PIXELS",
+    help="Side of the side-by-side crop figure in high-res pixels. Default 96.",
+)
 @options.overwrite_option
 @options.config_option
 @options.quiet_option
 @click.pass_context
-def assess(ctx, reference, report_dir, scale, model, self_train, method, degradation,
-           bands, consistency, ensemble, chunk, workers, scheduler, overwrite, quiet):
+def assess(ctx, reference, report_dir, scale, model, self_train, train_atoms, train_samples,
+           method, degradation, sigma, bands, consistency, ensemble, crop_size, overwrite, quiet):
     """Degrade REFERENCE by --scale, magnify it back, and compare with REFERENCE.
 
     The same is done with GDAL's bicubic and Lanczos resampling and nearest
     neighbour. REPORT_DIR receives metrics.json, report.md and PNG figures.
+    The reference is held in memory: fine up to a few thousand pixels a side.
 
     \b
     Example:
       geosr assess reference.tif --scale 3 -o report/
     """
     model, self_train = options.exclusive(ctx, "model", "self_train")
-    workers, scheduler = options.workers_and_scheduler(ctx)
+    if sigma is not None and degradation != "gaussian":
+        raise click.UsageError(
+            f"--sigma only applies to --degradation gaussian, got --degradation {degradation or 'bicubic'}",
+            ctx=ctx,
+        )
+    training = {k: v for k, v in (("n_atoms", train_atoms), ("max_samples", train_samples))
+                if v is not None}
+    if training and not self_train:
+        raise click.UsageError("--atoms and --samples only apply with --self-train", ctx=ctx)
+    extra = {}
+    if training:
+        extra["training"] = training
+    if degradation is not None:
+        extra["degradation"] = degradation
+    if crop_size is not None:
+        extra["crop_size"] = crop_size
     assess_raster = _assess_function()
     result = options.call_library(
         assess_raster,
@@ -88,14 +133,23 @@ def assess(ctx, reference, report_dir, scale, model, self_train, method, degrada
         model=model,
         self_train=self_train,
         method=method,
-        degradation=degradation,
+        sigma=sigma,
         bands=list(bands) if bands else None,
         consistency=consistency,
         ensemble=ensemble,
-        chunk_size=chunk,
-        workers=workers,
-        scheduler=scheduler,
         overwrite=overwrite,
         quiet=quiet,
+        **extra,
     )
-    options.report(ctx, f"geosr: wrote the report to {options.result_path(result, report_dir)}")
+    options.report(ctx, f"geosr: {_summary(result, report_dir)}")
+
+
+def _summary(result, report_dir):
+    """One line: PSNR of geosr and bicubic overall, and where the report is."""
+    where = os.path.join(os.fspath(report_dir), "report.md")
+    try:
+        ours = result["geosr"]["overall"]["psnr"]
+        bicubic = result["bicubic"]["overall"]["psnr"]
+        return f"PSNR {ours:.2f} dB with geosr, {bicubic:.2f} dB with bicubic; report: {where}"
+    except (TypeError, KeyError):
+        return f"report: {where}"

@@ -146,6 +146,7 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
         quiet=quiet,
         self_train=self_train,
         **extra,
+        _optional=options.defaulted(ctx, chunk_size="chunk"),
     )
     options.report(ctx, f"geosr: wrote {_summary(result, dst)}")
     stac_path = getattr(result, "stac", None)

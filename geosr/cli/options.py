@@ -510,12 +510,24 @@ def library_function(module, name):
         ) from None
 
 
-def call_library(func, *args, **kwargs):
+def defaulted(ctx, **keywords):
+    """The library keywords whose option was not given (left at its default).
+
+    ``keywords`` maps a library keyword to the click parameter name, e.g.
+    ``chunk_size="chunk"``.
+    """
+    given = (ParameterSource.COMMANDLINE, ParameterSource.ENVIRONMENT, ParameterSource.DEFAULT_MAP)
+    return {kw for kw, name in keywords.items() if ctx.get_parameter_source(name) not in given}
+
+
+def call_library(func, *args, _optional=(), **kwargs):
     """Call ``func`` with the keywords it accepts.
 
     A keyword the function does not take is dropped when its value is unset
-    (None, False, empty); when it is set, the call is refused with a one-line
-    RunError naming the option, instead of a TypeError from deep inside.
+    (None, False, empty) or listed in ``_optional`` (an option left at its
+    default, see :func:`defaulted`); when the user set it, the call is
+    refused with a one-line RunError naming the option, instead of a
+    TypeError from deep inside.
     """
     from ..errors import RunError
 
@@ -529,7 +541,7 @@ def call_library(func, *args, **kwargs):
     for key, value in kwargs.items():
         if key in params:
             accepted[key] = value
-        elif _is_set(value) and value != {}:
+        elif _is_set(value) and value != {} and key not in _optional:
             raise RunError(
                 f"The option {key.replace('_', '-')!r} is not supported by "
                 f"{func.__module__}.{func.__qualname__} in this installation, got {value!r}"

@@ -139,6 +139,7 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
         quiet=quiet,
         output=output,
         **{k: v for k, v in params.items() if v is not None},
+        _optional=options.defaulted(ctx, chunk_size="chunk", random_state="seed"),
     )
     n = len(result) if isinstance(result, (list, tuple)) else 1
     if shared:
