@@ -232,3 +232,13 @@ def test_landsat_geosr_beats_bicubic(landsat):
 )
 def test_landsat_sam_no_worse_than_bicubic(landsat):
     _check_sam(landsat)
+
+
+@pytest.mark.slow
+def test_astronaut_self_train_beats_bicubic_x2(astronaut_tif, tmp_path):
+    # Bootstrapping: per-band models learned from the degraded photo itself.
+    r = assess_raster(astronaut_tif, tmp_path / "rep", 2, self_train=True, quiet=True)
+    assert r["model"]["count"] == 3
+    assert isinstance(r["model_sha256"], list) and len(set(r["model_sha256"])) == 3
+    _check_beats_bicubic(r)
+    _check_sam(r)
