@@ -119,13 +119,10 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
         names = {"n_atoms": "--atoms", "max_samples": "--samples", "degradation": "--degradation"}
         given = ", ".join(names[k] for k in training)
         raise click.UsageError(f"{given} only apply with --self-train, got them without it", ctx=ctx)
-    if training:
-        extra = {"training": training}
-    else:
-        extra = {}
-    magnify_raster = options.library_function("geosr.workflow", "magnify_raster")
+    extra = {"training": training} if training else {}
     if max_output_bytes is not None:
         extra["max_output_bytes"] = max_output_bytes
+    magnify_raster = options.library_function("geosr.workflow", "magnify_raster")
     result = options.call_library(
         magnify_raster,
         src,
