@@ -760,3 +760,16 @@ def test_consistency_and_ensemble_chunked_equal_whole(make_raster, run_dir, tiny
     assert np.abs(out - ref).max() <= 1e-9
     with rasterio.open(run_dir / "o.tif") as d:
         assert d.tags()["GEOSR_CONSISTENCY"] == "yes" and d.tags()["GEOSR_ENSEMBLE"] == "yes"
+
+
+def test_shipped_model_when_none_is_given(make_raster, run_dir):
+    model_mod = pytest.importorskip("geosr.model")
+    if not model_mod.default_model_path(2).is_file():
+        pytest.skip("no shipped model for x2 in this checkout")
+    src = make_raster(camera(24, 24).astype(np.uint8))
+    res = magnify_raster(src, run_dir / "o.tif", scale=2, quiet=True)
+    shipped = model_mod.default_model(2)
+    assert res.model_sha256 == shipped.sha256_ and res.method == str(shipped.method)
+    with rasterio.open(run_dir / "o.tif") as d:
+        assert d.tags()["GEOSR_MODEL_SHA256"] == shipped.sha256_
+        assert np.abs(d.read(1).astype(float) - shipped.magnify(camera(24, 24))).max() <= 1
