@@ -1053,6 +1053,11 @@ def default_model(scale):
     """The model shipped in the package for ``scale`` (2, 3 or 4)."""
     path = default_model_path(scale)
     if not path.is_file():
+        if check_scale(scale) in (2, 3, 4):
+            raise ModelError(
+                f"The shipped model for x{scale} must be installed with geosr, got no file at "
+                f"{path}; reinstall geosr or pass a model file"
+            )
         raise ModelError(
             f"The 'scale' parameter must be one with a shipped model (2, 3 or 4), got {scale}; "
             "train a model with 'geosr train' for other scales"
