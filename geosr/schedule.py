@@ -50,6 +50,9 @@ __all__ = ["SchedulerSpec", "resolve_scheduler", "run_tasks", "default_workers"]
 
 _LOCAL_KINDS = ("threads", "processes", "synchronous")
 
+#: How long joining a running cluster may take before the run gives up.
+CONNECT_TIMEOUT = "20s"
+
 #: Objects shared by every task of a local run, by token (worker processes
 #: get theirs from the pool initializer).
 _SHARED = {}
@@ -306,7 +309,7 @@ def _client_for(spec):
             cluster.close()
         return
     try:
-        client = Client(spec.address, timeout="20s")
+        client = Client(spec.address, timeout=CONNECT_TIMEOUT)
     except (OSError, TimeoutError, ValueError) as exc:
         raise RunError(f"The dask scheduler at {spec.address} must be reachable, got: {exc}") from None
     try:

@@ -186,3 +186,26 @@ def test_progress_text_and_quiet():
     assert quiet.getvalue() == ""
     assert format_duration(42) == "42 s" and format_duration(185) == "3 min 05 s"
     assert format_duration(7620) == "2 h 07 min" and format_duration(float("inf")) == "?"
+
+
+@pytest.mark.slow
+@pytest.mark.cluster
+def test_joining_a_running_scheduler_by_address(monkeypatch):
+    from distributed import LocalCluster
+
+    import geosr.schedule
+
+    with LocalCluster(n_workers=1, threads_per_worker=2, processes=False, protocol="tcp", host="127.0.0.1",
+                      dashboard_address=None) as cluster:
+        address = cluster.scheduler_address
+        assert address.startswith("tcp://127.0.0.1:")
+        got = []
+        bar = Progress(9, quiet=True)
+        n = run_tasks(square, range(9), {"offset": 2}, got.append, scheduler=address, progress=bar)
+        assert n == 9 and bar.done == 9
+        assert sorted(got) == [(i, i * i + 2) for i in range(9)]
+        # The cluster outlives the run: it was joined, not started.
+        assert cluster.scheduler.status.name == "running"
+    monkeypatch.setattr(geosr.schedule, "CONNECT_TIMEOUT", "2s")
+    with pytest.raises(RunError, match="reachable"):
+        run_tasks(square, [1], {"offset": 0}, got.append, scheduler="tcp://127.0.0.1:9")
