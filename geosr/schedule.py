@@ -41,6 +41,7 @@ import multiprocessing
 import os
 import pickle
 import uuid
+import warnings
 
 from threadpoolctl import threadpool_limits
 
@@ -276,6 +277,10 @@ class _Box:
         self.value = value
 
 
+def _same(box):
+    return box
+
+
 def _call_distributed(func, job, box, limit_blas=True):
     if limit_blas:
         with threadpool_limits(limits=1, user_api="blas"):
@@ -325,7 +330,15 @@ def _run_distributed(spec, func, jobs, shared, consume, retries, progress, label
         return 0
     token = uuid.uuid4().hex[:12]
     with _client_for(spec) as client:
-        shared_future = client.scatter(_Box(shared), broadcast=True, hash=False)
+        if spec.kind == "local-cluster":
+            client.wait_for_workers(spec.workers, timeout=120)
+        # The shared object travels inside a task rather than by scatter: if
+        # the workers holding it die, the scheduler can recompute it from
+        # the task instead of cancelling every block that needs it.
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message="Large object", category=UserWarning)
+            shared_future = client.submit(_same, _Box(shared), key=f"geosr-shared-{token}",
+                                          pure=False, retries=retries)
         try:
             threads = sum(client.nthreads().values())
         except Exception:  # noqa: BLE001 - a best guess is enough
