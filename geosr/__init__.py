@@ -19,6 +19,7 @@ _LAZY = {
     "upscale_bicubic": "geosr.resample",
     "magnify_raster": "geosr.workflow",
     "train_from_rasters": "geosr.workflow",
+    "magnify_array": "geosr.workflow",
     "assess_raster": "geosr.assess",
 }
 _SUBMODULES = {"errors", "metrics", "sparse", "model", "resample", "patches", "workflow", "assess"}
