@@ -36,35 +36,9 @@ def _assess_function():
     help="Folder for metrics.json, report.md and the figures.",
 )
 @options.scale_option(required=True)
-@click.option(
-    "--model",
-    "-m",
-    type=click.Path(exists=True, dir_okay=False),
-    default=None,
-    metavar="MODEL",
-    help="Model file to assess. Default: the model shipped for --scale.",
-)
-@click.option(
-    "--self-train",
-    is_flag=True,
-    default=False,
-    help="Learn the model from the degraded REFERENCE itself instead of --model.",
-)
-@click.option(
-    "--atoms",
-    "train_atoms",
-    type=options.IntAtLeast(2),
-    default=None,
-    metavar="N",
-    help="With --self-train: dictionary size.",
-)
-@click.option(
-    "--samples",
-    "train_samples",
-    type=options.IntAtLeast(10),
-    default=None,
-    metavar="N",
-    help="With --self-train: training patches drawn from the degraded REFERENCE.",
+@options.model_source_options(
+    "REFERENCE",
+    "Model file to assess. Default: the model shipped for --scale.",
 )
 @options.method_option
 @click.option(

@@ -10,35 +10,9 @@ from . import options
 @click.command(short_help="Magnify a raster by an integer factor.")
 @click.argument("src", metavar="SRC")
 @click.argument("dst", metavar="DST")
-@click.option(
-    "--model",
-    "-m",
-    type=click.Path(exists=True, dir_okay=False),
-    default=None,
-    metavar="MODEL",
-    help="Model file from 'geosr train'. Default: the model shipped for --scale.",
-)
-@click.option(
-    "--self-train",
-    is_flag=True,
-    default=False,
-    help="Learn the model from SRC itself (degrade it, learn, apply) instead of --model.",
-)
-@click.option(
-    "--atoms",
-    "train_atoms",
-    type=options.IntAtLeast(2),
-    default=None,
-    metavar="N",
-    help="With --self-train: dictionary size. Default 1000.",
-)
-@click.option(
-    "--samples",
-    "train_samples",
-    type=options.IntAtLeast(10),
-    default=None,
-    metavar="N",
-    help="With --self-train: training patches drawn from SRC. Default 100000.",
+@options.model_source_options(
+    "SRC",
+    "Model file from 'geosr train'. Default: the model shipped for --scale.",
 )
 @options.degradation_option
 @options.scale_option(

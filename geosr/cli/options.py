@@ -22,6 +22,7 @@ from ..enums import Degradation, Method
 
 __all__ = [
     "SCALE_MIN",
+    "model_source_options",
     "SCALE_MAX",
     "ScaleType",
     "IntAtLeast",
@@ -283,6 +284,53 @@ def scale_option(required=True, help=None):
         required=required,
         help=help or f"Integer magnification factor, {SCALE_MIN} to {SCALE_MAX}.",
     )
+
+
+def model_source_options(source, model_help):
+    """``--model``, ``--self-train``, ``--atoms`` and ``--samples``, shared by commands.
+
+    ``source`` names the argument that self-training learns from (``SRC``,
+    ``REFERENCE``); ``model_help`` describes ``--model`` for that command.
+    """
+    decorators = [
+        click.option(
+            "--model",
+            "-m",
+            type=click.Path(exists=True, dir_okay=False),
+            default=None,
+            metavar="MODEL",
+            help=model_help,
+        ),
+        click.option(
+            "--self-train",
+            is_flag=True,
+            default=False,
+            help=f"Learn the model from {source} itself (degrade it, learn, apply) instead of --model.",
+        ),
+        click.option(
+            "--atoms",
+            "train_atoms",
+            type=IntAtLeast(2),
+            default=None,
+            metavar="N",
+            help="With --self-train: dictionary size.",
+        ),
+        click.option(
+            "--samples",
+            "train_samples",
+            type=IntAtLeast(10),
+            default=None,
+            metavar="N",
+            help=f"With --self-train: training patches drawn from {source}.",
+        ),
+    ]
+
+    def decorate(func):
+        for decorator in reversed(decorators):
+            func = decorator(func)
+        return func
+
+    return decorate
 
 
 method_option = click.option(
