@@ -48,12 +48,7 @@ def _assess_function():
     help="How REFERENCE is degraded before it is magnified back (Wald's protocol): "
     "'bicubic' (antialiased, default), 'gaussian' (point-spread function) or 'area' (block mean).",
 )
-@click.option(
-    "--sigma",
-    type=click.FloatRange(min=0.0, min_open=True),
-    default=None,
-    help="Width of the Gaussian point-spread function in high-res pixels (--degradation gaussian).",
-)
+@options.sigma_option
 @options.bands_option
 @click.option("--consistency", is_flag=True, default=False, help="Back-project the output.")
 @click.option("--ensemble", is_flag=True, default=False, help="Average the 8 flips and rotations.")

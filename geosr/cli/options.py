@@ -23,6 +23,7 @@ from ..enums import Degradation, Method
 __all__ = [
     "SCALE_MIN",
     "model_source_options",
+    "sigma_option",
     "SCALE_MAX",
     "ScaleType",
     "IntAtLeast",
@@ -332,6 +333,13 @@ def model_source_options(source, model_help):
 
     return decorate
 
+
+sigma_option = click.option(
+    "--sigma",
+    type=click.FloatRange(min=0.0, min_open=True),
+    default=None,
+    help="Width of the Gaussian point-spread function in high-res pixels (--degradation gaussian).",
+)
 
 method_option = click.option(
     "--method",

@@ -29,12 +29,7 @@ from . import options
 )
 @options.method_option
 @options.degradation_option
-@click.option(
-    "--sigma",
-    type=click.FloatRange(min=0.0, min_open=True),
-    default=None,
-    help="Width of the Gaussian point-spread function in high-res pixels (--degradation gaussian).",
-)
+@options.sigma_option
 @click.option(
     "--atoms",
     "n_atoms",
