@@ -303,8 +303,10 @@ class CoupledDictionary(BaseEstimator):
         if deg is Degradation.AREA:
             return 0
         left, right = degradation_margin(p_scale, deg, self.sigma)
-        per_step = UPSCALE_MARGIN + math.ceil(max(left, right) / p_scale)
-        return _CONSISTENCY_STEPS * per_step
+        cells = math.ceil(max(left, right) / p_scale)
+        # Each step reads the degradation support and the interpolation margin
+        # around what it corrects; the last ring measures the final residual.
+        return _CONSISTENCY_STEPS * (UPSCALE_MARGIN + cells) + cells
 
     def training_halo(self):
         """High-res pixels of context per side that :meth:`collect_pairs` needs.
@@ -664,7 +666,8 @@ class CoupledDictionary(BaseEstimator):
             return finite
         return None
 
-    def magnify_block(self, block, halo, valid=None, *, consistency=False, ensemble=False):
+    def magnify_block(self, block, halo, valid=None, *, consistency=False, ensemble=False,
+                      return_residual=False):
         """Magnify one window that carries its own context.
 
         Parameters
@@ -680,15 +683,26 @@ class CoupledDictionary(BaseEstimator):
             Measured pixels.
         consistency, ensemble : bool
             As in :meth:`magnify`.
+        return_residual : bool
+            Also return the consistency residual (needs ``consistency``).
 
         Returns
         -------
-        ndarray, shape (scale*h, scale*w)
+        out : ndarray, shape (scale*h, scale*w)
             Exactly the part of ``magnify(whole_image)`` that covers the
             window, to float rounding. Values under invalid pixels are
             meaningless.
+        residual : ndarray, shape (h, w)
+            Only with ``return_residual``: ``degrade(output) - input`` on the
+            window's low-res cells, degrading the whole-image output (the
+            context makes it exact at the window's edges). Meaningless at
+            invalid pixels.
         """
         self._check_fitted()
+        if return_residual and not consistency:
+            raise ParameterError(
+                "The 'return_residual' parameter needs consistency=True, got consistency=False"
+            )
         block = self._check_image(block, "block")
         dtype = _work_dtype(block)
         block = block.astype(dtype, copy=False)
@@ -710,21 +724,35 @@ class CoupledDictionary(BaseEstimator):
         if masked:
             valid = valid[crop : valid.shape[0] - crop, crop : valid.shape[1] - crop]
             if not valid.any():
-                return np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+                out = np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+                return (out, np.zeros((h, w), dtype=dtype)) if return_residual else out
             block = fill_invalid(block, valid)[FILL_DISTANCE:-FILL_DISTANCE, FILL_DISTANCE:-FILL_DISTANCE]
             need -= FILL_DISTANCE
         elif valid is not None:
             block = np.where(valid, block, 0).astype(dtype, copy=False)
         if not ensemble:
-            return self._magnify_padded(block, need, consistency)
-        acc = None
+            out, residual = self._magnify_padded(block, need, consistency)
+            return (out, residual) if return_residual else out
+        acc = res_acc = None
         for k in range(8):
-            out = _dihedral_inverse(self._magnify_padded(_dihedral(block, k), need, consistency), k)
+            out, residual = self._magnify_padded(_dihedral(block, k), need, consistency)
+            out = _dihedral_inverse(out, k)
             acc = out.copy() if acc is None else acc + out
-        return acc / dtype.type(8)
+            if residual is not None:
+                # The degradation is separable and symmetric, so it commutes with
+                # flips and rotations: the mean's residual is the residuals' mean.
+                residual = _dihedral_inverse(residual, k)
+                res_acc = residual.copy() if res_acc is None else res_acc + residual
+        acc /= dtype.type(8)
+        if return_residual:
+            return acc, res_acc / dtype.type(8)
+        return acc
 
     def _magnify_padded(self, block, halo, consistency):
-        """Magnify a block whose halo is exactly what the options need."""
+        """Magnify a block whose halo is exactly what the options need.
+
+        Returns the output and, with ``consistency``, its residual (else None).
+        """
         s = self._scale
         dtype = block.dtype
         reach = self._consistency_reach() if consistency else 0
@@ -735,9 +763,9 @@ class CoupledDictionary(BaseEstimator):
         w = block.shape[1] - 2 * inner
         core = block[inner - base : inner - base + h + 2 * base, inner - base : inner - base + w + 2 * base]
         out = self._synthesize(core, h, w, dtype)
-        if consistency:
-            out = self._make_consistent(out, block[inner:-inner or None, inner:-inner or None], reach)
-        return out
+        if not consistency:
+            return out, None
+        return self._make_consistent(out, block[inner:-inner or None, inner:-inner or None])
 
     def _synthesize(self, core, h, w, dtype):
         """Interpolation plus averaged detail for a core of halo FEATURE_RADIUS + 1."""
@@ -790,26 +818,36 @@ class CoupledDictionary(BaseEstimator):
                 out[sel] = features[sel] @ proj[j].T.astype(dtype, copy=False)
         return out
 
-    def _make_consistent(self, out, lr, reach):
-        """Back-project the degradation residual (see _CONSISTENCY_STEPS)."""
+    def _make_consistent(self, out, lr):
+        """Back-project the degradation residual (see _CONSISTENCY_STEPS).
+
+        ``out`` and ``lr`` cover the window plus the consistency reach on each
+        side. Returns the corrected window and its final residual
+        ``degrade(out) - lr`` on the window's cells.
+        """
         s = self._scale
         deg = Degradation.parse(self.degradation, "degradation")
         sigma = _check_sigma(s, deg, self.sigma)
         if deg is Degradation.AREA:
+            # Exact: adding each cell's error to its s x s block fixes its mean.
             resid = lr - out.reshape(lr.shape[0], s, lr.shape[1], s).mean(axis=(1, 3))
-            return out + np.repeat(np.repeat(resid, s, axis=0), s, axis=1)
+            out = out + np.repeat(np.repeat(resid, s, axis=0), s, axis=1)
+            return out, out.reshape(lr.shape[0], s, lr.shape[1], s).mean(axis=(1, 3)) - lr
         left, right = degradation_margin(s, deg, sigma)
         mc = math.ceil(max(left, right) / s)
         m = UPSCALE_MARGIN
         per_step = m + mc
-        for step in range(_CONSISTENCY_STEPS):
-            # out covers lr cells [reach - step*per_step ... ] shrinking each step.
-            shrink = per_step
-            resid = lr[mc : lr.shape[0] - mc, mc : lr.shape[1] - mc] - degrade_valid(out, s, deg, sigma, s * mc)
-            corr = upscale_valid(resid, s, m)
-            out = out[s * shrink : out.shape[0] - s * shrink, s * shrink : out.shape[1] - s * shrink] + corr
-            lr = lr[shrink : lr.shape[0] - shrink, shrink : lr.shape[1] - shrink]
-        return out
+
+        def error(out, lr):
+            # degrade(out) - lr on the cells whose degradation support out covers.
+            return degrade_valid(out, s, deg, sigma, s * mc) - lr[mc : lr.shape[0] - mc, mc : lr.shape[1] - mc]
+
+        for _ in range(_CONSISTENCY_STEPS):
+            # Each step shrinks the covered area by the support it reads.
+            corr = upscale_valid(-error(out, lr), s, m)
+            out = out[s * per_step : out.shape[0] - s * per_step, s * per_step : out.shape[1] - s * per_step] + corr
+            lr = lr[per_step : lr.shape[0] - per_step, per_step : lr.shape[1] - per_step]
+        return out[s * mc : out.shape[0] - s * mc, s * mc : out.shape[1] - s * mc], error(out, lr)
 
     # ----------------------------------------------------------------- files
     def _arrays(self):

@@ -120,6 +120,13 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
         _optional=options.defaulted(ctx, chunk_size="chunk"),
     )
     options.report(ctx, f"geosr: wrote {_summary(result, dst)}")
+    for residual in getattr(result, "consistency", None) or ():
+        if residual.rms is not None:
+            options.report(
+                ctx,
+                f"geosr: band {residual.band} consistency residual RMS {residual.rms:.4g} "
+                f"({residual.percent:.3g} % of its range), max {residual.max:.4g}",
+            )
     stac_path = getattr(result, "stac", None)
     if stac_path:
         options.report(ctx, f"geosr: wrote {stac_path}")

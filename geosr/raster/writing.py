@@ -136,6 +136,16 @@ class OutputRaster:
         except READ_ERRORS as exc:
             raise _destination_error(self.path, exc, "tagging") from None
 
+    def update_tags(self, tags, band_tags=()):
+        """Add dataset tags and per-band tags (one dict per band) before closing."""
+        try:
+            self.ds.update_tags(**tags)
+            for i, bt in enumerate(band_tags, start=1):
+                if bt:
+                    self.ds.update_tags(i, **bt)
+        except READ_ERRORS as exc:
+            raise _destination_error(self.path, exc, "tagging") from None
+
     def write(self, result):
         """Write one finished block (see ``BlockResult``)."""
         window = result.block.scaled(self.scale)
