@@ -283,6 +283,13 @@ def test_errors_are_clear():
 
 
 # ------------------------------------------------- image-level high-res dictionary
+def _tiny_coder(rng, k, d=6):
+    """A random feature kernel and unit-norm low-res dictionary for the tile tests."""
+    kernel = rng.normal(size=(d, 81)).astype(np.float32)
+    dictionary = rng.normal(size=(d, k)).astype(np.float32)
+    return kernel, dictionary / np.linalg.norm(dictionary, axis=0)
+
+
 def _tiny_tiles(rng, n_tiles, t, s, window=81):
     return [(rng.normal(size=((t + 2) ** 2, window)).astype(np.float32),
              rng.normal(size=(s * t, s * t)).astype(np.float32)) for _ in range(n_tiles)]
@@ -296,10 +303,8 @@ def test_image_level_fit_is_the_least_squares_solution():
     from geosr.sparse import omp_codes
 
     rng = np.random.default_rng(3)
-    s, t, k, d = 2, 4, 5, 6
-    kernel = rng.normal(size=(d, 81)).astype(np.float32)
-    dictionary = rng.normal(size=(d, k)).astype(np.float32)
-    dictionary /= np.linalg.norm(dictionary, axis=0)
+    s, t, k = 2, 4, 5
+    kernel, dictionary = _tiny_coder(rng, k)
     tiles = _tiny_tiles(rng, 3, t, s)
     start = np.zeros(((3 * s) ** 2, k), dtype=np.float32)
     high, kept = _refine_high_dictionary(start, dictionary, kernel, tiles, 2, s, n_iter=500)
@@ -327,10 +332,8 @@ def test_image_level_fit_never_worsens_the_held_out_tiles():
     from geosr.model import _refine_high_dictionary
 
     rng = np.random.default_rng(5)
-    s, t, k, d = 2, 4, 6, 6
-    kernel = rng.normal(size=(d, 81)).astype(np.float32)
-    dictionary = rng.normal(size=(d, k)).astype(np.float32)
-    dictionary /= np.linalg.norm(dictionary, axis=0)
+    s, t, k = 2, 4, 6
+    kernel, dictionary = _tiny_coder(rng, k)
     # Pure-noise details: nothing generalises, so the held-out tiles stop it at once.
     tiles = _tiny_tiles(rng, 10, t, s)
     start = rng.normal(size=((3 * s) ** 2, k)).astype(np.float32) * 1e-3
