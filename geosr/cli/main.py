@@ -17,6 +17,8 @@ Warnings from the library are printed as one line ``geosr: warning: ...``.
 from __future__ import annotations
 
 import contextlib
+import logging
+import os
 import signal
 import sys
 import warnings
@@ -75,9 +77,22 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
     click.echo(f"{PREFIX}: warning: {_one_line(message)}", err=True)
 
 
+def _quiet_library_logs():
+    """Keep GDAL's log records (relayed by rasterio) off stderr.
+
+    Without a handler, Python's last-resort handler prints them as bare
+    lines (``_tiffWriteProc: No space left on device.``) next to the one
+    error line; what they say reaches the user through that error.
+    """
+    logger = logging.getLogger("rasterio")
+    if not any(isinstance(h, logging.NullHandler) for h in logger.handlers):
+        logger.addHandler(logging.NullHandler())
+
+
 @contextlib.contextmanager
 def _error_policy(ctx=None):
     """Turn every failure raised inside into a one-line :class:`CliError`."""
+    _quiet_library_logs()
     try:
         with warnings.catch_warnings():
             warnings.showwarning = _show_warning
@@ -169,6 +184,10 @@ def _on_sigterm(signum, frame):
 
 def main(argv=None):
     """Entry point of the ``geosr`` console script."""
+    # dask.distributed's client logs a line for every rescheduled task (after
+    # a worker died, say); the run reports failures itself as one line.
+    # Read by dask when it is first imported; the user's own setting wins.
+    os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "error")
     previous = None
     with contextlib.suppress(ValueError, OSError):  # not in the main thread
         previous = signal.signal(signal.SIGTERM, _on_sigterm)
