@@ -279,6 +279,9 @@ CASES = [
     Case("free-disk-guard", "the destination's disk has less room than the output",
          make_huge_for_disk, ("--max-output", "100T"), code=1, message="free",
          advice="Free some space, write elsewhere, or pass --no-space-check if compression will make it fit."),
+    Case("free-disk-guard-skipped", "the same on a small disk with --no-space-check, the compressed output fits",
+         None, ("--no-space-check",), code=0, message="geosr: wrote", kind="small-disk",
+         advice="Nothing: the option skips the guard."),
     Case("complex-dtype", "SRC has complex pixels", make_dtype("complex64"), code=1,
          message="got complex64 in band 1", advice="Convert to a real pixel type first."),
     Case("int64-dtype", "SRC has 64-bit integer pixels", make_dtype("int64"), code=1,
@@ -538,9 +541,18 @@ def _big_scene(env, rows=240, cols=240):
 
 
 # ------------------------------------------------------------------ the test
-@pytest.mark.parametrize("case", CASES, ids=[c.id for c in CASES])
+#: Cases that run the console script for many seconds (still run by make test).
+SLOW_KINDS = ("signal", "sigkill", "worker-killed", "disk-full")
+
+
+@pytest.mark.parametrize("case", [
+    pytest.param(c, id=c.id, marks=[pytest.mark.slow] if c.kind in SLOW_KINDS else [])
+    for c in CASES
+])
 def test_case(case, env, monkeypatch):
     kind = case.kind
+    if kind == "small-disk":
+        return _small_disk(case, env, _fill(case.args, env, case))
     if kind in ("signal", "sigkill", "worker-killed"):
         pytest.importorskip("distributed")
         return _interruption(case, env)
@@ -613,6 +625,26 @@ def _read_only(case, env, src, args, before_src):
         assert os.listdir(ro) == []
     assert code == case.code, stderr
     check_stderr(stderr, case)
+    assert _digest(src) == before_src
+
+
+def _small_disk(case, env, args):
+    """A 256 KiB disk, a flat 512 x 512 scene: 1 MiB uncompressed at x2, a few KiB deflated."""
+    src = _write(env.work / "flat.tif", np.full((512, 512), 90, np.uint8))
+    before_src = _digest(src)
+    folder = env.out / "small"
+    with tmpfs(folder, "size=256k") as mounted:
+        if not mounted:
+            pytest.skip("mounting a small tmpfs is not permitted here")
+        code, _, stderr = run_cli(["magnify", src, folder / "o.tif", "--quiet", "--model", env.model])
+        assert code == 1 and "free" in stderr and os.listdir(folder) == []  # the guard refuses
+        code, stdout, stderr = run_cli(["magnify", src, folder / "o.tif", *args])
+        assert code == case.code, stderr
+        check_stderr(stderr, case)
+        check_message(stdout, stderr, case)
+        assert os.listdir(folder) == ["o.tif"]
+        with rasterio.open(folder / "o.tif") as d:
+            assert (d.width, d.height) == (1024, 1024) and (d.read() == 90).all()
     assert _digest(src) == before_src
 
 

@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import contextlib
 import logging
-import os
 import signal
 import sys
 import warnings
@@ -78,15 +77,30 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 
 def _quiet_library_logs():
-    """Keep GDAL's log records (relayed by rasterio) off stderr.
+    """Keep library log records off stderr: only geosr's own lines go there.
 
-    Without a handler, Python's last-resort handler prints them as bare
-    lines (``_tiffWriteProc: No space left on device.``) next to the one
-    error line; what they say reaches the user through that error.
+    rasterio relays GDAL's errors and warnings as log records; without a
+    handler Python's last-resort handler prints them as bare lines next to
+    the one error line, and what they say reaches the user through that
+    error anyway.
     """
     logger = logging.getLogger("rasterio")
     if not any(isinstance(h, logging.NullHandler) for h in logger.handlers):
         logger.addHandler(logging.NullHandler())
+    # dask.distributed's client logs a warning for every task it reschedules
+    # (after a worker died, say); the run retries them and reports a failure
+    # itself as one line. A filter, because distributed sets its loggers'
+    # levels when it is imported.
+    client = logging.getLogger("distributed.client")
+    if not any(isinstance(f, _BelowError) for f in client.filters):
+        client.addFilter(_BelowError())
+
+
+class _BelowError(logging.Filter):
+    """Drops records below ERROR."""
+
+    def filter(self, record):
+        return record.levelno >= logging.ERROR
 
 
 @contextlib.contextmanager
@@ -184,10 +198,6 @@ def _on_sigterm(signum, frame):
 
 def main(argv=None):
     """Entry point of the ``geosr`` console script."""
-    # dask.distributed's client logs a line for every rescheduled task (after
-    # a worker died, say); the run reports failures itself as one line.
-    # Read by dask when it is first imported; the user's own setting wins.
-    os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "error")
     previous = None
     with contextlib.suppress(ValueError, OSError):  # not in the main thread
         previous = signal.signal(signal.SIGTERM, _on_sigterm)
