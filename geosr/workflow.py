@@ -402,9 +402,9 @@ def magnify_raster(
     if out_bytes > max_output_bytes:
         raise InputError(
             f"The output of {info.name!r} magnified x{scale} ({scale * info.width} x "
-            f"{scale * info.height} pixels, {len(band_sel)} bands of {dtype}) must be at most "
-            f"max_output_bytes={max_output_bytes} bytes uncompressed, got {out_bytes}; raise "
-            "max_output_bytes if this size is intended"
+            f"{scale * info.height} pixels, {len(band_sel)} band{'s' if len(band_sel) != 1 else ''} "
+            f"of {dtype}) must be at most max_output_bytes={max_output_bytes} bytes uncompressed, "
+            f"got {out_bytes}; raise max_output_bytes (--max-output) if this size is intended"
         )
     if check_space:
         _check_free_space(dst_path.parent, out_bytes * (2 if cog else 1))
