@@ -171,59 +171,44 @@ _ANCHOR_TOLERANCE = 1e-4
 def _nearest_anchors(features, dictionary_low):
     """Index of the atom of largest absolute correlation with each feature.
 
-    The same choice as ``argmax`` / ``argmin`` of ``features @ D_l`` taken in
-    the features' dtype (the first index wins a tie, and a positive
-    correlation wins against a negative one of equal size). For float64
-    features the correlations are first computed in float32 (one large
-    product, half the time); the atoms within :data:`_ANCHOR_TOLERANCE` of
-    the best are then compared again in float64, so the answer is the
-    float64 one.
+    The choice of ``argmax`` / ``argmin`` of ``features @ D_l`` taken in
+    float64 (the first index wins a tie, and a positive correlation wins
+    against a negative one of equal size). One compiled pass per feature
+    computes its correlations in float32 (kept in cache, never written out);
+    the atoms within :data:`_ANCHOR_TOLERANCE` of the best are compared again
+    in float64, so the answer is the float64 one.
     """
-    n = len(features)
-    anchors = np.empty(n, dtype=np.int64)
-    if features.dtype == np.float32:
-        corr = features @ dictionary_low.astype(np.float32, copy=False)
-        _anchor_kernel(corr, features, np.empty((0, features.shape[1]), np.float32), -1.0, anchors)
-        return anchors
     f64 = np.ascontiguousarray(features, dtype=np.float64)
-    corr = f64.astype(np.float32) @ dictionary_low.astype(np.float32)
-    atoms64 = np.ascontiguousarray(dictionary_low.T, dtype=np.float64)
-    _anchor_kernel(corr, f64, atoms64, _ANCHOR_TOLERANCE, anchors)
+    atoms32 = np.ascontiguousarray(dictionary_low, dtype=np.float32)  # (d, k)
+    atoms64 = np.ascontiguousarray(dictionary_low.T, dtype=np.float64)  # (k, d)
+    anchors = np.empty(len(f64), dtype=np.int64)
+    _anchor_kernel(f64, atoms32, atoms64, _ANCHOR_TOLERANCE, anchors)
     return anchors
 
 
 @numba.njit(nogil=True, cache=True)
-def _row_extremes(row):  # pragma: no cover - compiled
-    high = row[0]
-    low = row[0]
-    for v in row:
-        high = max(high, v)
-        low = min(low, v)
-    return high, low
-
-
-@numba.njit(nogil=True, cache=True)
-def _anchor_kernel(corr, features, atoms, tolerance, anchors):  # pragma: no cover - compiled
-    n, k = corr.shape
-    d = features.shape[1]
+def _anchor_kernel(features, atoms32, atoms64, tolerance, anchors):  # pragma: no cover - compiled
+    n, d = features.shape
+    k = atoms32.shape[1]
+    row = np.empty(k, dtype=np.float32)
     for i in range(n):
-        row = corr[i]
-        high, low = _row_extremes(row)
-        if tolerance < 0.0:
-            target = high if high >= -low else low
-            j = 0
-            while row[j] != target:
-                j += 1
-            anchors[i] = j
-            continue
+        row[:] = 0.0
         norm = 0.0
         for t in range(d):
-            norm += features[i, t] * features[i, t]
-        norm = math.sqrt(norm)
+            ft = features[i, t]
+            norm += ft * ft
+            f32 = np.float32(ft)
+            for j in range(k):
+                row[j] += f32 * atoms32[t, j]
         if norm == 0.0:
             anchors[i] = 0  # every correlation is exactly zero
             continue
-        threshold = max(high, -low) - tolerance * norm
+        high = row[0]
+        low = row[0]
+        for j in range(k):
+            high = max(high, row[j])
+            low = min(low, row[j])
+        threshold = max(high, -low) - tolerance * math.sqrt(norm)
         hi_value = -np.inf
         lo_value = np.inf
         hi = -1
@@ -233,7 +218,7 @@ def _anchor_kernel(corr, features, atoms, tolerance, anchors):  # pragma: no cov
                 continue
             c = 0.0
             for t in range(d):
-                c += features[i, t] * atoms[j, t]
+                c += features[i, t] * atoms64[j, t]
             if c > hi_value:
                 hi_value = c
                 hi = j
