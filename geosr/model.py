@@ -227,6 +227,20 @@ def _anchor_kernel(features, atoms32, atoms64, tolerance, anchors):  # pragma: n
                 lo = j
         anchors[i] = hi if hi_value >= -lo_value else lo
 
+
+def _apply_projections(features, anchors, projections):
+    """Patches ``P_a f`` for features (n, d) and their anchors, grouped by anchor."""
+    dtype = features.dtype
+    proj = projections.astype(dtype, copy=False)
+    out = np.empty((len(features), proj.shape[1]), dtype=dtype)
+    order = np.argsort(anchors, kind="stable")
+    bounds = np.searchsorted(anchors[order], np.arange(proj.shape[0] + 1))
+    with threadpool_limits(limits=1, user_api="blas"):
+        for j in np.flatnonzero(np.diff(bounds)):
+            sel = order[bounds[j] : bounds[j + 1]]
+            out[sel] = features[sel] @ proj[j].T
+    return out
+
 class CoupledDictionary(BaseEstimator):
     """Magnify 2-D images by an integer factor with a learned sparse prior.
 
@@ -843,16 +857,7 @@ class CoupledDictionary(BaseEstimator):
             for t in range(1, idx.shape[1]):
                 out += coef[:, t : t + 1] * dh[idx[:, t]]
             return out
-        anchors = _nearest_anchors(features, dl)
-        proj = self.projections_.astype(dtype, copy=False)
-        out = np.empty((len(features), proj.shape[1]), dtype=dtype)
-        order = np.argsort(anchors, kind="stable")
-        bounds = np.searchsorted(anchors[order], np.arange(proj.shape[0] + 1))
-        with threadpool_limits(limits=1, user_api="blas"):
-            for j in np.flatnonzero(np.diff(bounds)):
-                sel = order[bounds[j] : bounds[j + 1]]
-                out[sel] = features[sel] @ proj[j].T
-        return out
+        return _apply_projections(features, _nearest_anchors(features, dl), self.projections_)
 
     def _make_consistent(self, out, lr, reach):
         """Back-project the degradation residual (see _CONSISTENCY_STEPS)."""
