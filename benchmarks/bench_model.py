@@ -11,26 +11,22 @@ as the reference.
 
 import argparse
 import json
+import os
+import sys
 import time
 
 import numpy as np
 from skimage import color, data
 
-from geosr.model import CoupledDictionary
-from geosr.resample import crop_to_multiple, degrade, upscale_bicubic
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from _common import best_of  # noqa: E402
+
+from geosr.model import CoupledDictionary  # noqa: E402
+from geosr.resample import crop_to_multiple, degrade, upscale_bicubic  # noqa: E402
 
 
 def result(**kw):
     print("RESULT " + json.dumps({"benchmark": "model", **kw}))
-
-
-def best_of(fn, repeat):
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return min(times)
 
 
 def main():

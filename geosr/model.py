@@ -30,6 +30,7 @@ import tempfile
 import warnings
 from importlib import resources
 
+import numba
 import numpy as np
 import scipy.sparse
 from sklearn.base import BaseEstimator
@@ -193,6 +194,85 @@ def _dihedral_inverse(a, k):
         a = a[..., ::-1]
     return a
 
+
+#: Relative bound, in units of the feature norm, under which two float32
+#: correlations with unit atoms may be misordered; about 50 times the
+#: worst-case rounding of a 30-term float32 dot product (Higham 2002, eq. 3.5).
+_ANCHOR_TOLERANCE = 1e-4
+
+
+def _nearest_anchors(features, dictionary_low):
+    """Index of the atom of largest absolute correlation with each feature.
+
+    The choice of ``argmax`` / ``argmin`` of ``features @ D_l`` taken in
+    float64 (the first index wins a tie, and a positive correlation wins
+    against a negative one of equal size). One compiled pass per feature
+    computes its correlations in float32 (kept in cache, never written out);
+    the atoms within :data:`_ANCHOR_TOLERANCE` of the best are compared again
+    in float64, so the answer is the float64 one.
+    """
+    f64 = np.ascontiguousarray(features, dtype=np.float64)
+    atoms32 = np.ascontiguousarray(dictionary_low, dtype=np.float32)  # (d, k)
+    atoms64 = np.ascontiguousarray(dictionary_low.T, dtype=np.float64)  # (k, d)
+    anchors = np.empty(len(f64), dtype=np.int64)
+    _anchor_kernel(f64, atoms32, atoms64, _ANCHOR_TOLERANCE, anchors)
+    return anchors
+
+
+@numba.njit(nogil=True, cache=True)
+def _anchor_kernel(features, atoms32, atoms64, tolerance, anchors):  # pragma: no cover - compiled
+    n, d = features.shape
+    k = atoms32.shape[1]
+    row = np.empty(k, dtype=np.float32)
+    for i in range(n):
+        row[:] = 0.0
+        norm = 0.0
+        for t in range(d):
+            ft = features[i, t]
+            norm += ft * ft
+            f32 = np.float32(ft)
+            for j in range(k):
+                row[j] += f32 * atoms32[t, j]
+        if norm == 0.0:
+            anchors[i] = 0  # every correlation is exactly zero
+            continue
+        high = row[0]
+        low = row[0]
+        for j in range(k):
+            high = max(high, row[j])
+            low = min(low, row[j])
+        threshold = max(high, -low) - tolerance * math.sqrt(norm)
+        hi_value = -np.inf
+        lo_value = np.inf
+        hi = -1
+        lo = -1
+        for j in range(k):
+            if abs(row[j]) < threshold:
+                continue
+            c = 0.0
+            for t in range(d):
+                c += features[i, t] * atoms64[j, t]
+            if c > hi_value:
+                hi_value = c
+                hi = j
+            if c < lo_value:
+                lo_value = c
+                lo = j
+        anchors[i] = hi if hi_value >= -lo_value else lo
+
+
+def _apply_projections(features, anchors, projections):
+    """Patches ``P_a f`` for features (n, d) and their anchors, grouped by anchor."""
+    dtype = features.dtype
+    proj = projections.astype(dtype, copy=False)
+    out = np.empty((len(features), proj.shape[1]), dtype=dtype)
+    order = np.argsort(anchors, kind="stable")
+    bounds = np.searchsorted(anchors[order], np.arange(proj.shape[0] + 1))
+    with threadpool_limits(limits=1, user_api="blas"):
+        for j in np.flatnonzero(np.diff(bounds)):
+            sel = order[bounds[j] : bounds[j + 1]]
+            out[sel] = features[sel] @ proj[j].T
+    return out
 
 class CoupledDictionary(BaseEstimator):
     """Magnify 2-D images by an integer factor with a learned sparse prior.
@@ -884,9 +964,11 @@ class CoupledDictionary(BaseEstimator):
         for c0 in range(0, h + 2, rows_per_strip):
             c1 = min(h + 2, c0 + rows_per_strip)
             windows = lowres_windows(lr[c0 : c1 - 1 + size])
+            if np.may_share_memory(windows, lr):  # a view, not the usual copy
+                windows = windows.copy()
             # The kernel annihilates constants; removing the centre value makes
             # that exact in floating point (a constant image stays constant).
-            windows = windows - windows[:, _CENTRE : _CENTRE + 1]
+            windows -= windows[:, _CENTRE : _CENTRE + 1].copy()
             features = windows @ kernel.T
             patches = self._predict(features).reshape(c1 - c0, wp, -1)
             overlap_add(canvas, patches, c0)
@@ -903,20 +985,7 @@ class CoupledDictionary(BaseEstimator):
             for t in range(1, idx.shape[1]):
                 out += coef[:, t : t + 1] * dh[idx[:, t]]
             return out
-        corr = features @ dl
-        hi = corr.argmax(axis=1)
-        lo = corr.argmin(axis=1)
-        rows = np.arange(len(corr))
-        anchors = np.where(corr[rows, hi] >= -corr[rows, lo], hi, lo)
-        proj = self.projections_
-        out = np.empty((len(features), proj.shape[1]), dtype=dtype)
-        order = np.argsort(anchors, kind="stable")
-        bounds = np.searchsorted(anchors[order], np.arange(proj.shape[0] + 1))
-        with threadpool_limits(limits=1, user_api="blas"):
-            for j in np.flatnonzero(np.diff(bounds)):
-                sel = order[bounds[j] : bounds[j + 1]]
-                out[sel] = features[sel] @ proj[j].T.astype(dtype, copy=False)
-        return out
+        return _apply_projections(features, _nearest_anchors(features, dl), self.projections_)
 
     def _make_consistent(self, out, lr):
         """Back-project the degradation residual (see _CONSISTENCY_STEPS).

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 
+import numba
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
@@ -195,13 +196,26 @@ def overlap_add(canvas, patches, first_row):
     """
     s = canvas.shape[1]
     nr, wp = patches.shape[:2]
-    p = patches.reshape(nr, wp, 3, s, 3, s)
-    for a in range(3):
-        for b in range(3):
-            # Centre index ci covers window cell ci - 2 + a, canvas row ci + a.
-            canvas[first_row + a : first_row + a + nr, :, b : b + wp, :] += p[
-                :, :, a, :, b, :
-            ].transpose(0, 2, 1, 3)
+    p = np.ascontiguousarray(patches, dtype=canvas.dtype).reshape(nr, wp, 3, s, 3, s)
+    _overlap_add_kernel(canvas, p, int(first_row))
+
+
+@numba.njit(nogil=True, cache=True)
+def _overlap_add_kernel(canvas, p, first_row):  # pragma: no cover - compiled
+    # Centre index ci covers canvas row ci + a for patch row a. Every canvas
+    # element receives its contributions in the order a = 0..2, then b = 0..2,
+    # the order of nine whole-array additions, so the sums are the same.
+    nr, wp, _, s, _, _ = p.shape
+    for row in range(first_row, first_row + nr + 2):
+        for a in range(3):
+            i = row - first_row - a
+            if i < 0 or i >= nr:
+                continue
+            for y in range(s):
+                for b in range(3):
+                    for j in range(wp):
+                        for x in range(s):
+                            canvas[row, y, b + j, x] += p[i, j, a, y, b, x]
 
 
 def canvas_average(canvas):

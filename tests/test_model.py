@@ -361,3 +361,45 @@ def test_image_level_option_is_for_the_sparse_method():
         CoupledDictionary(method="anchored", high_fit="image").fit([np.zeros((60, 60))])
     with pytest.raises(ParameterError, match="'patch' or 'image'"):
         CoupledDictionary(high_fit="pixels").fit([np.zeros((60, 60))])
+
+
+def reference_anchors(features, dictionary_low):
+    # The plain definition of A+ atom selection (Timofte et al. 2014): the atom of largest
+    # absolute correlation, ties to the first index and to the positive side.
+    corr = features @ dictionary_low
+    hi, lo = corr.argmax(axis=1), corr.argmin(axis=1)
+    rows = np.arange(len(corr))
+    return np.where(corr[rows, hi] >= -corr[rows, lo], hi, lo)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_anchor_search_matches_argmax_of_correlations(dtype):
+    from geosr.model import _nearest_anchors
+
+    rng = np.random.default_rng(1)
+    atoms = rng.standard_normal((30, 200))
+    atoms /= np.linalg.norm(atoms, axis=0)
+    atoms = atoms.astype(np.float32)
+    features = rng.standard_normal((3000, 30)) * 10.0 ** rng.uniform(-3, 4, (3000, 1))
+    # Near ties that float32 alone cannot order: halfway between two atoms, and an atom
+    # with a sign flip of its neighbour; plus all-zero features.
+    mid = (atoms[:, :50] + atoms[:, 50:100]).T * 7.0
+    mid += rng.standard_normal(mid.shape) * 1e-9
+    flip = (atoms[:, 100:150] - atoms[:, 150:200]).T * 3.0
+    features = np.concatenate([features, mid, flip, np.zeros((5, 30))]).astype(dtype)
+    got = _nearest_anchors(features, atoms)
+    # Float32 features are ordered by their exact (float64) correlations.
+    expect = reference_anchors(features.astype(np.float64), atoms.astype(np.float64))
+    np.testing.assert_array_equal(got, expect)
+
+
+def test_anchored_prediction_matches_per_patch_projection():
+    # The grouped projection equals applying each patch's own regression P_j f.
+    model = CoupledDictionary(scale=2, method="anchored", n_atoms=32, n_iter=1, max_samples=3000,
+                              neighbours=256, random_state=0).fit([data.camera()[:200, :200]])
+    rng = np.random.default_rng(2)
+    features = rng.standard_normal((500, model.dictionary_low_.shape[0]))
+    anchors = reference_anchors(features, model.dictionary_low_.astype(np.float64))
+    proj = model.projections_.astype(np.float64)
+    expect = np.stack([proj[a] @ f for a, f in zip(anchors, features)])
+    np.testing.assert_allclose(model._predict(features), expect, rtol=1e-12, atol=1e-12)
