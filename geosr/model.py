@@ -688,6 +688,24 @@ class CoupledDictionary(BaseEstimator):
             window, to float rounding. Values under invalid pixels are
             meaningless.
         """
+        prepared = self._prepare_block(block, halo, valid, consistency)
+        block, need, dtype, h, w = prepared
+        if block is None:
+            return np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+        if not ensemble:
+            return self._magnify_padded(block, need, consistency)
+        acc = None
+        for k in range(8):
+            out = _dihedral_inverse(self._magnify_padded(_dihedral(block, k), need, consistency), k)
+            acc = out.copy() if acc is None else acc + out
+        return acc / dtype.type(8)
+
+    def _prepare_block(self, block, halo, valid, consistency):
+        """Checked, cropped and filled block with the halo the options need.
+
+        Returns ``(block, need, dtype, h, w)``; ``block`` is None when no
+        pixel of the window is valid.
+        """
         self._check_fitted()
         block = self._check_image(block, "block")
         dtype = _work_dtype(block)
@@ -710,18 +728,58 @@ class CoupledDictionary(BaseEstimator):
         if masked:
             valid = valid[crop : valid.shape[0] - crop, crop : valid.shape[1] - crop]
             if not valid.any():
-                return np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+                return None, need, dtype, h, w
             block = fill_invalid(block, valid)[FILL_DISTANCE:-FILL_DISTANCE, FILL_DISTANCE:-FILL_DISTANCE]
             need -= FILL_DISTANCE
         elif valid is not None:
             block = np.where(valid, block, 0).astype(dtype, copy=False)
-        if not ensemble:
-            return self._magnify_padded(block, need, consistency)
-        acc = None
-        for k in range(8):
-            out = _dihedral_inverse(self._magnify_padded(_dihedral(block, k), need, consistency), k)
-            acc = out.copy() if acc is None else acc + out
-        return acc / dtype.type(8)
+        return block, need, dtype, h, w
+
+    def interpolate_block(self, block, halo, valid=None, *, consistency=False):
+        """The interpolation that :meth:`magnify_block` adds its detail to.
+
+        Parameters
+        ----------
+        block, halo, valid, consistency :
+            As in :meth:`magnify_block` (``consistency`` only decides the
+            halo the block must carry).
+
+        Returns
+        -------
+        ndarray, shape (scale*h, scale*w)
+            Bicubic interpolation of the window (invalid pixels filled the
+            same way as for magnifying); the detail of ``magnify_block`` is
+            its output minus this.
+        """
+        block, need, dtype, h, w = self._prepare_block(block, halo, valid, consistency)
+        if block is None:
+            return np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+        m = UPSCALE_MARGIN
+        crop = need - m
+        return upscale_valid(block[crop : block.shape[0] - crop, crop : block.shape[1] - crop],
+                             self._scale, m)
+
+    def interpolate(self, image, valid=None):
+        """The interpolation that :meth:`magnify` adds its detail to.
+
+        Parameters
+        ----------
+        image : ndarray, shape (h, w)
+        valid : ndarray of bool, shape (h, w), optional
+
+        Returns
+        -------
+        ndarray, shape (scale*h, scale*w)
+            float32 for float32 input, float64 otherwise.
+        """
+        self._check_fitted()
+        image = self._check_image(image, "image")
+        valid = self._valid_mask(image, valid)
+        masked = valid is not None and not valid.all()
+        r = self.context_radius(masked=masked)
+        block = np.pad(image, r, mode="symmetric")
+        vblock = None if valid is None else np.pad(valid, r, mode="symmetric")
+        return self.interpolate_block(block, r, vblock)
 
     def _magnify_padded(self, block, halo, consistency):
         """Magnify a block whose halo is exactly what the options need."""
