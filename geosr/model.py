@@ -46,6 +46,7 @@ from .patches import (
     detail_patches,
     lowres_windows,
     overlap_add,
+    overlap_average,
     overlap_canvas,
     pca_basis,
     raw_feature_kernel,
@@ -86,6 +87,16 @@ _CENTRE = ((2 * FEATURE_RADIUS + 1) ** 2) // 2
 #: Shrink factor of the extra training copies (0.98**k, k = 0 .. copies - 1).
 _RESCALE_STEP = 0.98
 
+#: Side, in low-res cells, of the dense training tiles of ``high_fit="image"``.
+_TILE_CELLS = 24
+
+#: Conjugate-gradient iterations of the image-level high-res dictionary.
+_IMAGE_FIT_ITERATIONS = 30
+
+#: Parameters added after format version 1, written to model files only when
+#: they differ from these defaults (older files and checksums stay valid).
+_LATER_PARAMS = {"high_fit": "patch"}
+
 
 @dataclasses.dataclass
 class PairSample:
@@ -101,16 +112,38 @@ class PairSample:
     scale : int
     n_images : int
         How many source images the sample came from.
+    tiles : list of (ndarray, ndarray)
+        Only for ``high_fit="image"``: dense tiles of ``t x t`` low-res cells,
+        each as the windows of its ``(t + 2)**2`` patch centres (row-major,
+        one ring outside the tile) and its detail image ``(s*t, s*t)``.
     """
 
     windows: np.ndarray
     details: np.ndarray
     scale: int
     n_images: int = 1
+    tiles: list = dataclasses.field(default_factory=list)
+
+    @property
+    def tile_cells(self):
+        """Low-res cells covered by the tiles."""
+        return sum(d.shape[0] * d.shape[1] for _, d in self.tiles) // self.scale**2
 
     def __len__(self):
         return len(self.windows)
 
+
+def _subset_tiles(tiles, scale, max_cells, rng):
+    """A seeded random subset of tiles covering at most ``max_cells`` cells."""
+    cells = [d.shape[0] * d.shape[1] // scale**2 for _, d in tiles]
+    if sum(cells) <= max_cells:
+        return list(tiles)
+    keep, total = [], 0
+    for i in rng.permutation(len(tiles)):
+        if total + cells[i] <= max_cells:
+            keep.append(i)
+            total += cells[i]
+    return [tiles[i] for i in sorted(keep)]
 
 def _rng(random_state):
     if isinstance(random_state, np.random.Generator):
@@ -193,6 +226,12 @@ class CoupledDictionary(BaseEstimator):
     rescaled_copies : int
         Training copies of each in-memory reference rescaled by 0.98**k,
         k = 0 .. rescaled_copies - 1 (1 means the reference only).
+    high_fit : {"patch", "image"}
+        How ``"sparse"`` learns its high-res dictionary: ``"patch"`` by least
+        squares on the training patches; ``"image"`` then refines it by
+        conjugate gradients so that the overlap-averaged reconstruction of
+        dense training tiles matches their detail (the averaging that
+        magnification applies is part of the fit).
     random_state : int, numpy Generator or None
         Seed for sample selection and K-SVD.
 
@@ -227,6 +266,7 @@ class CoupledDictionary(BaseEstimator):
         neighbours=2048,
         ridge=0.1,
         rescaled_copies=1,
+        high_fit="patch",
         random_state=0,
     ):
         self.scale = scale
@@ -241,6 +281,7 @@ class CoupledDictionary(BaseEstimator):
         self.neighbours = neighbours
         self.ridge = ridge
         self.rescaled_copies = rescaled_copies
+        self.high_fit = high_fit
         self.random_state = random_state
 
     # ------------------------------------------------------------------ checks
@@ -259,6 +300,16 @@ class CoupledDictionary(BaseEstimator):
         p["neighbours"] = _check_int(self.neighbours, "neighbours", 1)
         p["ridge"] = _check_float(self.ridge, "ridge", 0.0, 1e6, low_open=True)
         p["rescaled_copies"] = _check_int(self.rescaled_copies, "rescaled_copies", 1, 64)
+        if self.high_fit not in ("patch", "image"):
+            raise ParameterError(
+                f"The 'high_fit' parameter must be 'patch' or 'image', got {self.high_fit!r}"
+            )
+        if self.high_fit == "image" and p["method"] is not Method.SPARSE:
+            raise ParameterError(
+                "The 'high_fit' parameter 'image' applies to the sparse method only, got "
+                f"method={str(p['method'])!r}"
+            )
+        p["high_fit"] = self.high_fit
         return p
 
     def _check_fitted(self):
@@ -303,8 +354,10 @@ class CoupledDictionary(BaseEstimator):
         if deg is Degradation.AREA:
             return 0
         left, right = degradation_margin(p_scale, deg, self.sigma)
-        per_step = UPSCALE_MARGIN + math.ceil(max(left, right) / p_scale)
-        return _CONSISTENCY_STEPS * per_step
+        cells = math.ceil(max(left, right) / p_scale)
+        # Each step reads the degradation support and the interpolation margin
+        # around what it corrects; the last ring measures the final residual.
+        return _CONSISTENCY_STEPS * (UPSCALE_MARGIN + cells) + cells
 
     def training_halo(self):
         """High-res pixels of context per side that :meth:`collect_pairs` needs.
@@ -375,12 +428,15 @@ class CoupledDictionary(BaseEstimator):
             small_block = np.pad(small, need, mode="symmetric")
             small_valid = np.pad(small_valid, need, mode="symmetric")
             samples.append(self._pairs_from_block(small_block, need, small_valid, p, budget, rng))
-        windows = np.concatenate([w for w, _ in samples])
-        details = np.concatenate([d for _, d in samples])
+        windows = np.concatenate([w for w, _, _ in samples])
+        details = np.concatenate([d for _, d, _ in samples])
+        tiles = [t for _, _, ts in samples for t in ts]
         if max_pairs is not None and len(windows) > max_pairs:
             keep = np.sort(rng.choice(len(windows), size=int(max_pairs), replace=False))
             windows, details = windows[keep], details[keep]
-        return PairSample(windows, details, s, 1)
+        if max_pairs is not None:
+            tiles = _subset_tiles(tiles, s, int(max_pairs), rng)
+        return PairSample(windows, details, s, 1, tiles)
 
     def _pairs_from_block(self, block, halo, valid, p, budget, rng):
         s = p["scale"]
@@ -389,7 +445,7 @@ class CoupledDictionary(BaseEstimator):
         rows = (block.shape[0] - 2 * halo) // s
         cols = (block.shape[1] - 2 * halo) // s
         n_raw = (2 * r + 1) ** 2
-        empty = (np.empty((0, n_raw), np.float32), np.empty((0, (3 * s) ** 2), np.float32))
+        empty = (np.empty((0, n_raw), np.float32), np.empty((0, (3 * s) ** 2), np.float32), [])
         if rows < 3 or cols < 3:
             return empty
         # Keep whole cells: the interior starts at halo and spans rows*s.
@@ -421,6 +477,10 @@ class CoupledDictionary(BaseEstimator):
         bad_centre = maximum_filter(bad_lr.astype(np.uint8), size=2 * r + 1, mode="nearest")[
             r : r + rows, r : r + cols
         ].astype(bool)
+        all_windows = lowres_windows(lr)  # one row per cell 0..rows-1 x 0..cols-1
+        tiles = []
+        if p["high_fit"] == "image":
+            tiles = self._tiles_from_block(all_windows, detail, bad_centre, rows, cols, s, budget, rng)
         ci, cj = np.meshgrid(np.arange(1, rows - 1), np.arange(1, cols - 1), indexing="ij")
         ci, cj = ci.ravel(), cj.ravel()
         keep = ~bad_centre[ci, cj]
@@ -429,8 +489,7 @@ class CoupledDictionary(BaseEstimator):
             pick = np.sort(rng.choice(len(ci), size=budget, replace=False))
             ci, cj = ci[pick], cj[pick]
         if len(ci) == 0:
-            return empty
-        all_windows = lowres_windows(lr)  # one row per cell 0..rows-1 x 0..cols-1
+            return empty[0], empty[1], tiles
         windows = all_windows[ci * cols + cj]
         kernel = raw_feature_kernel(s)
         gram = kernel.T @ kernel
@@ -438,7 +497,32 @@ class CoupledDictionary(BaseEstimator):
         textured = norms > _FLAT_FRACTION * norms.mean() if norms.mean() > 0 else norms > 0
         windows = windows[textured]
         details = detail_patches(detail, s, ci[textured], cj[textured])
-        return windows.astype(np.float32), details.astype(np.float32)
+        return windows.astype(np.float32), details.astype(np.float32), tiles
+
+    @staticmethod
+    def _tiles_from_block(all_windows, detail, bad_centre, rows, cols, s, budget, rng):
+        """Dense tiles (windows of every centre, detail image) of a block.
+
+        Tiles sit on a grid of step ``_TILE_CELLS`` (smaller blocks give one
+        smaller tile); a tile is kept only when none of its centres, the ring
+        outside it included, touches an invalid pixel.
+        """
+        t = min(_TILE_CELLS, rows - 2, cols - 2)
+        if t < 4:
+            return []
+        windows = all_windows.reshape(rows, cols, -1)
+        tiles = []
+        # Tile cells c0 .. c0 + t - 1 with centres c0 - 1 .. c0 + t inside the block.
+        for r0 in range(1, rows - t, t):
+            for c0 in range(1, cols - t, t):
+                if bad_centre[r0 - 1 : r0 + t + 1, c0 - 1 : c0 + t + 1].any():
+                    continue
+                w = windows[r0 - 1 : r0 + t + 1, c0 - 1 : c0 + t + 1].reshape((t + 2) ** 2, -1)
+                d = detail[s * r0 : s * (r0 + t), s * c0 : s * (c0 + t)]
+                tiles.append((w.astype(np.float32), d.astype(np.float32)))
+        if budget is not None:
+            tiles = _subset_tiles(tiles, s, int(budget), rng)
+        return tiles
 
     def fit(self, images, valid=None):
         """Learn the dictionaries from high-res training images.
@@ -515,6 +599,7 @@ class CoupledDictionary(BaseEstimator):
         n_images = sum(smp.n_images for smp in samples)
         windows = np.concatenate([smp.windows for smp in samples]) if samples else np.empty((0, 81))
         details = np.concatenate([smp.details for smp in samples]) if samples else np.empty((0, 1))
+        tiles = [t for smp in samples for t in smp.tiles]
         rng = _rng(self.random_state)
         if len(windows) > p["max_samples"]:
             keep = np.sort(rng.choice(len(windows), size=p["max_samples"], replace=False))
@@ -540,8 +625,22 @@ class CoupledDictionary(BaseEstimator):
         for name in ("dictionary_high_", "projections_"):
             if hasattr(self, name):
                 delattr(self, name)
+        n_tile_cells = kept = 0
         if p["method"] is Method.SPARSE:
-            self.dictionary_high_ = self._fit_high_dictionary(dictionary, features, details, p)
+            high = self._fit_high_dictionary(dictionary, features, details, p)
+            if p["high_fit"] == "image":
+                tiles = _subset_tiles(tiles, s, p["max_samples"], rng)
+                if not tiles:
+                    raise InputError(
+                        "The image-level fit (high_fit='image') needs dense tiles of "
+                        f"{_TILE_CELLS} x {_TILE_CELLS} valid low-res cells, got none; give larger "
+                        "references or use high_fit='patch'"
+                    )
+                n_tile_cells = sum(d.size for _, d in tiles) // s**2
+                high, kept = _refine_high_dictionary(
+                    high, dictionary, kernel.astype(np.float32), tiles, p["sparsity"], s
+                )
+            self.dictionary_high_ = high
         else:
             self.projections_ = self._fit_projections(dictionary, features, details, p)
         self.feature_kernel_ = kernel.astype(np.float32)
@@ -556,6 +655,9 @@ class CoupledDictionary(BaseEstimator):
             "rescaled_copies": p["rescaled_copies"],
             "ksvd_iterations": int(info.get("n_iter", p["n_iter"])) if isinstance(info, dict) else p["n_iter"],
         }
+        if p["high_fit"] == "image":
+            self.training_["image_fit_cells"] = int(n_tile_cells)
+            self.training_["image_fit_iterations"] = int(kept)
         self.sha256_ = _model_sha256(self._arrays(), self._header_params())
         return self
 
@@ -664,7 +766,8 @@ class CoupledDictionary(BaseEstimator):
             return finite
         return None
 
-    def magnify_block(self, block, halo, valid=None, *, consistency=False, ensemble=False):
+    def magnify_block(self, block, halo, valid=None, *, consistency=False, ensemble=False,
+                      return_residual=False):
         """Magnify one window that carries its own context.
 
         Parameters
@@ -680,25 +783,46 @@ class CoupledDictionary(BaseEstimator):
             Measured pixels.
         consistency, ensemble : bool
             As in :meth:`magnify`.
+        return_residual : bool
+            Also return the consistency residual (needs ``consistency``).
 
         Returns
         -------
-        ndarray, shape (scale*h, scale*w)
+        out : ndarray, shape (scale*h, scale*w)
             Exactly the part of ``magnify(whole_image)`` that covers the
             window, to float rounding. Values under invalid pixels are
             meaningless.
+        residual : ndarray, shape (h, w)
+            Only with ``return_residual``: ``degrade(output) - input`` on the
+            window's low-res cells, degrading the whole-image output (the
+            context makes it exact at the window's edges). Meaningless at
+            invalid pixels.
         """
-        prepared = self._prepare_block(block, halo, valid, consistency)
-        block, need, dtype, h, w = prepared
+        if return_residual and not consistency:
+            raise ParameterError(
+                "The 'return_residual' parameter needs consistency=True, got consistency=False"
+            )
+        block, need, dtype, h, w = self._prepare_block(block, halo, valid, consistency)
         if block is None:
-            return np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+            out = np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+            return (out, np.zeros((h, w), dtype=dtype)) if return_residual else out
         if not ensemble:
-            return self._magnify_padded(block, need, consistency)
-        acc = None
+            out, residual = self._magnify_padded(block, need, consistency)
+            return (out, residual) if return_residual else out
+        acc = res_acc = None
         for k in range(8):
-            out = _dihedral_inverse(self._magnify_padded(_dihedral(block, k), need, consistency), k)
+            out, residual = self._magnify_padded(_dihedral(block, k), need, consistency)
+            out = _dihedral_inverse(out, k)
             acc = out.copy() if acc is None else acc + out
-        return acc / dtype.type(8)
+            if residual is not None:
+                # The degradation is separable and symmetric, so it commutes with
+                # flips and rotations: the mean's residual is the residuals' mean.
+                residual = _dihedral_inverse(residual, k)
+                res_acc = residual.copy() if res_acc is None else res_acc + residual
+        acc /= dtype.type(8)
+        if return_residual:
+            return acc, res_acc / dtype.type(8)
+        return acc
 
     def _prepare_block(self, block, halo, valid, consistency):
         """Checked, cropped and filled block with the halo the options need.
@@ -782,7 +906,10 @@ class CoupledDictionary(BaseEstimator):
         return self.interpolate_block(block, r, vblock)
 
     def _magnify_padded(self, block, halo, consistency):
-        """Magnify a block whose halo is exactly what the options need."""
+        """Magnify a block whose halo is exactly what the options need.
+
+        Returns the output and, with ``consistency``, its residual (else None).
+        """
         s = self._scale
         dtype = block.dtype
         reach = self._consistency_reach() if consistency else 0
@@ -793,9 +920,9 @@ class CoupledDictionary(BaseEstimator):
         w = block.shape[1] - 2 * inner
         core = block[inner - base : inner - base + h + 2 * base, inner - base : inner - base + w + 2 * base]
         out = self._synthesize(core, h, w, dtype)
-        if consistency:
-            out = self._make_consistent(out, block[inner:-inner or None, inner:-inner or None], reach)
-        return out
+        if not consistency:
+            return out, None
+        return self._make_consistent(out, block[inner:-inner or None, inner:-inner or None])
 
     def _synthesize(self, core, h, w, dtype):
         """Interpolation plus averaged detail for a core of halo FEATURE_RADIUS + 1."""
@@ -848,26 +975,36 @@ class CoupledDictionary(BaseEstimator):
                 out[sel] = features[sel] @ proj[j].T.astype(dtype, copy=False)
         return out
 
-    def _make_consistent(self, out, lr, reach):
-        """Back-project the degradation residual (see _CONSISTENCY_STEPS)."""
+    def _make_consistent(self, out, lr):
+        """Back-project the degradation residual (see _CONSISTENCY_STEPS).
+
+        ``out`` and ``lr`` cover the window plus the consistency reach on each
+        side. Returns the corrected window and its final residual
+        ``degrade(out) - lr`` on the window's cells.
+        """
         s = self._scale
         deg = Degradation.parse(self.degradation, "degradation")
         sigma = _check_sigma(s, deg, self.sigma)
         if deg is Degradation.AREA:
+            # Exact: adding each cell's error to its s x s block fixes its mean.
             resid = lr - out.reshape(lr.shape[0], s, lr.shape[1], s).mean(axis=(1, 3))
-            return out + np.repeat(np.repeat(resid, s, axis=0), s, axis=1)
+            out = out + np.repeat(np.repeat(resid, s, axis=0), s, axis=1)
+            return out, out.reshape(lr.shape[0], s, lr.shape[1], s).mean(axis=(1, 3)) - lr
         left, right = degradation_margin(s, deg, sigma)
         mc = math.ceil(max(left, right) / s)
         m = UPSCALE_MARGIN
         per_step = m + mc
-        for step in range(_CONSISTENCY_STEPS):
-            # out covers lr cells [reach - step*per_step ... ] shrinking each step.
-            shrink = per_step
-            resid = lr[mc : lr.shape[0] - mc, mc : lr.shape[1] - mc] - degrade_valid(out, s, deg, sigma, s * mc)
-            corr = upscale_valid(resid, s, m)
-            out = out[s * shrink : out.shape[0] - s * shrink, s * shrink : out.shape[1] - s * shrink] + corr
-            lr = lr[shrink : lr.shape[0] - shrink, shrink : lr.shape[1] - shrink]
-        return out
+
+        def error(out, lr):
+            # degrade(out) - lr on the cells whose degradation support out covers.
+            return degrade_valid(out, s, deg, sigma, s * mc) - lr[mc : lr.shape[0] - mc, mc : lr.shape[1] - mc]
+
+        for _ in range(_CONSISTENCY_STEPS):
+            # Each step shrinks the covered area by the support it reads.
+            corr = upscale_valid(-error(out, lr), s, m)
+            out = out[s * per_step : out.shape[0] - s * per_step, s * per_step : out.shape[1] - s * per_step] + corr
+            lr = lr[per_step : lr.shape[0] - per_step, per_step : lr.shape[1] - per_step]
+        return out[s * mc : out.shape[0] - s * mc, s * mc : out.shape[1] - s * mc], error(out, lr)
 
     # ----------------------------------------------------------------- files
     def _arrays(self):
@@ -885,6 +1022,9 @@ class CoupledDictionary(BaseEstimator):
 
     def _header_params(self):
         params = self.get_params()
+        for name, default in _LATER_PARAMS.items():
+            if params.get(name) == default:
+                del params[name]
         params = {k: (str(v) if isinstance(v, (Method, Degradation)) else v) for k, v in params.items()}
         if not isinstance(params.get("random_state"), (int, np.integer, type(None))):
             params["random_state"] = None
@@ -914,6 +1054,112 @@ class CoupledDictionary(BaseEstimator):
 #: Back-projection steps of the consistency option (a fixed count keeps the
 #: context radius, and so chunked output, exact).
 _CONSISTENCY_STEPS = 8
+
+
+def _refine_high_dictionary(high, dictionary, kernel, tiles, sparsity, scale,
+                            n_iter=_IMAGE_FIT_ITERATIONS):
+    """Image-level least squares for the high-res dictionary.
+
+    Minimises ``sum_t || average_t(D_h A_t) - E_t ||^2`` over the dense tiles,
+    where ``A_t`` are the OMP codes of every patch centre of tile ``t``,
+    ``average_t`` the overlap averaging of magnification and ``E_t`` the
+    tile's detail image, by conjugate gradients on the normal equations
+    (CGLS, Hestenes & Stiefel 1952) started from the patch-level solution.
+
+    Parameters
+    ----------
+    high : ndarray, shape ((3s)**2, n_atoms)
+        Patch-level dictionary, the starting point.
+    dictionary : ndarray, shape (d, n_atoms)
+    kernel : ndarray, shape (d, window size)
+    tiles : list of (windows, detail)
+        See :class:`PairSample`.
+    sparsity, scale : int
+    n_iter : int
+
+    Returns
+    -------
+    high : ndarray, float32, same shape as ``high``
+    iterations : int
+        Iterations kept: every fifth tile (with five or more) is held out
+        and the iterations stop where its loss is least, so the result is
+        never worse than the start on held-out tiles.
+    """
+    from numpy.lib.stride_tricks import sliding_window_view
+
+    s = int(scale)
+    n_atoms = dictionary.shape[1]
+    codes, targets, sides = [], [], []
+    for windows, detail in tiles:
+        windows = windows - windows[:, _CENTRE : _CENTRE + 1]
+        idx, coef = omp_codes(dictionary, (windows @ kernel.T).T, sparsity)
+        n, k = idx.shape
+        codes.append(scipy.sparse.csr_matrix(
+            (coef.ravel().astype(np.float64), (idx.ravel(), np.repeat(np.arange(n), k))),
+            shape=(n_atoms, n),
+        ))
+        targets.append(detail.astype(np.float64))
+        sides.append(detail.shape[0] // s)
+
+    def forward(x):
+        # Magnification's detail for every tile: code, patch, overlap-average.
+        xt = np.ascontiguousarray(x.T)
+        return [overlap_average((a.T @ xt).reshape(t + 2, t + 2, -1), s)
+                for a, t in zip(codes, sides)]
+
+    def adjoint(images):
+        # Transpose of forward: each centre's patch of residual / 9, coded back.
+        g = np.zeros((n_atoms, (3 * s) ** 2))
+        for a, t, r in zip(codes, sides, images):
+            padded = np.pad(r / 9.0, 2 * s)
+            patches = sliding_window_view(padded, (3 * s, 3 * s))[::s, ::s]
+            g += a @ patches.reshape((t + 2) ** 2, -1)
+        return g.T
+
+    def inner(u, v):
+        return float(sum(np.vdot(a, b) for a, b in zip(u, v)))
+
+    # Every fifth tile is held out: the iterations stop where its loss is least
+    # (early stopping; the overlapped fit is loosely determined and overfits).
+    held = [n % 5 == 4 for n in range(len(codes))] if len(codes) >= 5 else [False] * len(codes)
+    fit_idx = [n for n, h in enumerate(held) if not h] or list(range(len(codes)))
+    check_idx = [n for n, h in enumerate(held) if h]
+    fit_codes, fit_sides = [codes[n] for n in fit_idx], [sides[n] for n in fit_idx]
+    fit_targets = [targets[n] for n in fit_idx]
+
+    check_codes, check_sides = [codes[n] for n in check_idx], [sides[n] for n in check_idx]
+    check_targets = [targets[n] for n in check_idx]
+    codes, sides = fit_codes, fit_sides
+
+    def check_loss(x):
+        xt = np.ascontiguousarray(x.T)
+        return sum(float(np.sum((e - overlap_average((a.T @ xt).reshape(t + 2, t + 2, -1), s)) ** 2))
+                   for a, t, e in zip(check_codes, check_sides, check_targets))
+    x = high.astype(np.float64)
+    best, best_loss, kept = x.copy(), check_loss(x), 0
+    resid = [e - f for e, f in zip(fit_targets, forward(x))]
+    grad = adjoint(resid)
+    direction = grad.copy()
+    gamma = float(np.vdot(grad, grad))
+    for it in range(1, int(n_iter) + 1):
+        if gamma <= 1e-30:
+            break
+        q = forward(direction)
+        qq = inner(q, q)
+        if qq <= 0:
+            break
+        alpha = gamma / qq
+        x += alpha * direction
+        loss = check_loss(x)
+        if loss < best_loss or not check_idx:
+            best, best_loss, kept = x.copy(), loss, it
+        elif check_idx:
+            break
+        resid = [r - alpha * qi for r, qi in zip(resid, q)]
+        grad = adjoint(resid)
+        gamma, previous = float(np.vdot(grad, grad)), gamma
+        direction = grad + (gamma / previous) * direction
+    return best.astype(np.float32), kept
 
 
 # --------------------------------------------------------------- model files

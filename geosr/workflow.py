@@ -19,7 +19,7 @@ from .enums import Method
 from .errors import InputError, ModelError, ParameterError
 from .progress import Progress
 from .raster import GeoreferencingWarning
-from .raster.blocks import BlockPlan, magnify_one_block, spectral_guard_applies
+from .raster.blocks import BlockPlan, ResidualStats, magnify_one_block, spectral_guard_applies
 from .raster.io import (
     TempFiles,
     check_bands,
@@ -56,6 +56,8 @@ __all__ = [
     "magnify_array",
     "train_from_rasters",
     "MagnifyResult",
+    "ConsistencyResidual",
+    "CONSISTENCY_TOLERANCE",
     "DEFAULT_MAX_OUTPUT_BYTES",
 ]
 
@@ -88,6 +90,8 @@ class MagnifyResult:
     chunk_size : int
     seconds : float
     scheduler : str
+    consistency : tuple of ConsistencyResidual or None
+        With the consistency option: the residual of each output band.
     """
 
     dst: Path
@@ -103,6 +107,72 @@ class MagnifyResult:
     chunk_size: int
     seconds: float
     scheduler: str
+    consistency: object = None
+
+
+#: The stated tolerance of the consistency option: RMS of degrade(output) -
+#: input as a fraction of the band's valid range.
+CONSISTENCY_TOLERANCE = 0.005
+
+
+@dataclasses.dataclass(frozen=True)
+class ConsistencyResidual:
+    """How far degrading one magnified band is from its source.
+
+    Attributes
+    ----------
+    band : int
+        1-based output band.
+    rms, max : float
+        RMS and largest absolute value of ``degrade(output) - input`` over
+        the valid source pixels, in the band's units, before rounding to
+        the output type (None for alpha bands and empty bands).
+    percent : float
+        ``rms`` as a percentage of the band's valid range (0 for a constant
+        band with zero residual).
+    within_tolerance : bool
+        ``percent <= 100 * CONSISTENCY_TOLERANCE``.
+    """
+
+    band: int
+    rms: object
+    max: object
+    percent: object
+    within_tolerance: bool
+
+
+def _consistency_residuals(stats, roles):
+    """Per-band :class:`ConsistencyResidual` from the summed block statistics."""
+    rms, span = stats.rms(), stats.value_range()
+    found = []
+    for i, role in enumerate(roles):
+        if role < 0 or stats.count[i] == 0:
+            found.append(ConsistencyResidual(i + 1, None, None, None, True))
+            continue
+        percent = 100.0 * rms[i] / span[i] if span[i] > 0 else (0.0 if rms[i] == 0 else float("inf"))
+        found.append(ConsistencyResidual(
+            i + 1, float(rms[i]), float(stats.max_abs[i]), float(percent),
+            bool(percent <= 100 * CONSISTENCY_TOLERANCE),
+        ))
+    return tuple(found)
+
+
+def _consistency_tags(residuals):
+    """Dataset tags and per-band tags that state the residual and the tolerance."""
+    measured = [r for r in residuals if r.rms is not None]
+    tags = {
+        "GEOSR_CONSISTENCY_TOLERANCE": f"RMS of degrade(output) - input at most "
+                                       f"{100 * CONSISTENCY_TOLERANCE:g} % of each band's valid range",
+        "GEOSR_CONSISTENCY_MET": "yes" if all(r.within_tolerance for r in measured) else "no",
+    }
+    band_tags = []
+    for r in residuals:
+        band_tags.append({} if r.rms is None else {
+            "GEOSR_CONSISTENCY_RMS": f"{r.rms:.6g}",
+            "GEOSR_CONSISTENCY_MAX": f"{r.max:.6g}",
+            "GEOSR_CONSISTENCY_RMS_PERCENT": f"{r.percent:.4g}",
+        })
+    return tags, band_tags
 
 
 @dataclasses.dataclass(frozen=True)
@@ -337,9 +407,9 @@ def magnify_raster(
     if out_bytes > max_output_bytes:
         raise InputError(
             f"The output of {info.name!r} magnified x{scale} ({scale * info.width} x "
-            f"{scale * info.height} pixels, {len(band_sel)} bands of {dtype}) must be at most "
-            f"max_output_bytes={max_output_bytes} bytes uncompressed, got {out_bytes}; raise "
-            "max_output_bytes if this size is intended"
+            f"{scale * info.height} pixels, {len(band_sel)} band{'s' if len(band_sel) != 1 else ''} "
+            f"of {dtype}) must be at most max_output_bytes={max_output_bytes} bytes uncompressed, "
+            f"got {out_bytes}; raise max_output_bytes (--max-output) if this size is intended"
         )
     if check_space:
         _check_free_space(dst_path.parent, out_bytes * (2 if cog else 1))
@@ -439,15 +509,31 @@ def magnify_raster(
         tmp = temps.scratch(dst_path, ".tif") if cog else temps.new(dst_path, ".tif")
         with OutputRaster(tmp, profile, scale, write_mask=mode is MaskMode.MASK) as out:
             out.set_metadata(info, band_sel, tags, band_tags)
-            counts = {"valid": 0}
+            counts = {"valid": 0, "residual": ResidualStats.empty(len(band_sel))}
 
             def consume(result):
                 out.write(result)
                 counts["valid"] += result.n_valid
+                if result.residual is not None:
+                    counts["residual"] = counts["residual"] + result.residual
 
             with Progress(len(jobs), "magnify", quiet=quiet) as bar:
                 run_tasks(_magnify_task, jobs, models, consume, scheduler=spec,
                           retries=retries, progress=bar, label="magnify")
+            residuals = None
+            if consistency:
+                residuals = _consistency_residuals(counts["residual"], roles)
+                res_tags, res_band_tags = _consistency_tags(residuals)
+                out.update_tags(res_tags, res_band_tags)
+                worst = [r for r in residuals if not r.within_tolerance]
+                if worst:
+                    warnings.warn(
+                        f"The consistency residual of band {worst[0].band} is {worst[0].percent:.3g} % "
+                        f"of its range, above the stated {100 * CONSISTENCY_TOLERANCE:g} %; the "
+                        "degradation model may not describe this data",
+                        UserWarning,
+                        stacklevel=2,
+                    )
         if counts["valid"] == 0:
             warnings.warn(
                 f"The source raster {info.name!r} has no valid pixel in the magnified bands; "
@@ -489,6 +575,7 @@ def magnify_raster(
         chunk_size=chunk,
         seconds=time.monotonic() - started,
         scheduler=spec.describe(),
+        consistency=residuals,
     )
 
 

@@ -398,7 +398,7 @@ def test_train_passes_model_parameters(recorder, tmp_path):
     result = run("train", "a.tif", "b.tif", "-o", "m.npz", "-s", "4", "--shared", "--method",
                  "sparse", "--degradation", "gaussian", "--sigma", "1.5", "--atoms", "128",
                  "--sparsity", "2", "--iterations", "5", "--neighbours", "256", "--samples", "20000",
-                 "--seed", "7", "--bands", "2", "--chunk", "512", "-q")
+                 "--high-fit", "image", "--seed", "7", "--bands", "2", "--chunk", "512", "-q")
     assert result.exit_code == 0, result.stderr
     (args, kw), = calls
     assert args == (["a.tif", "b.tif"], 4)
@@ -406,7 +406,7 @@ def test_train_passes_model_parameters(recorder, tmp_path):
         "bands": [2], "shared": True, "random_state": 7, "chunk_size": 512, "workers": None,
         "scheduler": None, "quiet": True, "output": "m.npz", "method": "sparse",
         "degradation": "gaussian", "sigma": 1.5, "n_atoms": 128, "sparsity": 2, "n_iter": 5,
-        "neighbours": 256, "max_samples": 20000,
+        "neighbours": 256, "max_samples": 20000, "high_fit": "image",
     }
 
 

@@ -135,6 +135,29 @@ def test_ensemble_and_consistency(fitted, held_out):
     assert res_cons < 0.5 * res_plain
 
 
+def test_consistency_residual_meets_the_tolerance_and_keeps_psnr(fitted, held_out):
+    for hr in held_out:
+        lr = degrade(hr, 3)
+        plain = fitted.magnify(lr)
+        r = fitted.context_radius(consistency=True)
+        out, resid = fitted.magnify_block(np.pad(lr, r, mode="symmetric"), r, consistency=True,
+                                          return_residual=True)
+        np.testing.assert_allclose(out, fitted.magnify(lr, consistency=True), atol=1e-9)
+        # Away from the border (where the whole-image degradation mirrors the output) the
+        # residual is exactly degrade(output) - input.
+        b = 6
+        np.testing.assert_allclose(resid[b:-b, b:-b], (degrade(out, 3) - lr)[b:-b, b:-b], atol=1e-9)
+        # The stated tolerance: RMS below 0.5 % of the dynamic range; PSNR (skimage.metrics)
+        # not lower than without the back-projection.
+        assert np.sqrt(np.mean(resid**2)) < 0.005 * (lr.max() - lr.min())
+        assert psnr_shaved(hr, out, 3) >= psnr_shaved(hr, plain, 3) - 1e-3
+
+
+def test_residual_needs_consistency(fitted):
+    with pytest.raises(ParameterError, match="consistency=True"):
+        fitted.magnify_block(np.zeros((40, 40)), 15, return_residual=True)
+
+
 def test_area_consistency_is_exact():
     img = data.camera()[:240, :240].astype(float)
     model = CoupledDictionary(scale=2, method="anchored", degradation="area", n_atoms=32,
@@ -142,6 +165,10 @@ def test_area_consistency_is_exact():
     lr = degrade(img, 2, "area")
     out = model.magnify(lr, consistency=True)
     np.testing.assert_allclose(degrade(out, 2, "area"), lr, atol=1e-9)
+    r = model.context_radius(consistency=True)
+    _, resid = model.magnify_block(np.pad(lr, r, mode="symmetric"), r, consistency=True,
+                                   return_residual=True)
+    assert np.abs(resid).max() < 1e-9
 
 
 def test_seeded_fits_repeat():
@@ -253,3 +280,84 @@ def test_errors_are_clear():
         CoupledDictionary().fit(np.zeros((30, 30)))
     with pytest.raises(InputError, match="textured patches"):
         CoupledDictionary(scale=2, n_atoms=16).fit([np.full((40, 40), 3.0)])
+
+
+# ------------------------------------------------- image-level high-res dictionary
+def _tiny_coder(rng, k, d=6):
+    """A random feature kernel and unit-norm low-res dictionary for the tile tests."""
+    kernel = rng.normal(size=(d, 81)).astype(np.float32)
+    dictionary = rng.normal(size=(d, k)).astype(np.float32)
+    return kernel, dictionary / np.linalg.norm(dictionary, axis=0)
+
+
+def _tiny_tiles(rng, n_tiles, t, s, window=81):
+    return [(rng.normal(size=((t + 2) ** 2, window)).astype(np.float32),
+             rng.normal(size=(s * t, s * t)).astype(np.float32)) for _ in range(n_tiles)]
+
+
+def test_image_level_fit_is_the_least_squares_solution():
+    # Reference: numpy.linalg.lstsq on the explicit matrix of the overlapped objective
+    # (fewer than five tiles, so nothing is held out and CG runs to convergence).
+    from geosr.model import _refine_high_dictionary
+    from geosr.patches import overlap_average
+    from geosr.sparse import omp_codes
+
+    rng = np.random.default_rng(3)
+    s, t, k = 2, 4, 5
+    kernel, dictionary = _tiny_coder(rng, k)
+    tiles = _tiny_tiles(rng, 3, t, s)
+    start = np.zeros(((3 * s) ** 2, k), dtype=np.float32)
+    high, kept = _refine_high_dictionary(start, dictionary, kernel, tiles, 2, s, n_iter=500)
+    assert kept > 0
+    # The explicit linear map from the dictionary's entries to the averaged tile details.
+    columns = []
+    for j in range(start.size):
+        unit = np.zeros(start.size)
+        unit[j] = 1.0
+        unit = unit.reshape(start.shape)
+        parts = []
+        for windows, _ in tiles:
+            w = windows - windows[:, 40:41]
+            idx, coef = omp_codes(dictionary, (w @ kernel.T).T, 2)
+            patches = (coef[:, :, None].astype(np.float64) * unit.T[idx]).sum(axis=1)
+            parts.append(overlap_average(patches.reshape(t + 2, t + 2, -1), s).ravel())
+        columns.append(np.concatenate(parts))
+    matrix = np.stack(columns, axis=1)
+    target = np.concatenate([det.ravel() for _, det in tiles]).astype(np.float64)
+    expected = np.linalg.lstsq(matrix, target, rcond=None)[0].reshape(start.shape)
+    np.testing.assert_allclose(high, expected, atol=2e-3 * np.abs(expected).max())
+
+
+def test_image_level_fit_never_worsens_the_held_out_tiles():
+    from geosr.model import _refine_high_dictionary
+
+    rng = np.random.default_rng(5)
+    s, t, k = 2, 4, 6
+    kernel, dictionary = _tiny_coder(rng, k)
+    # Pure-noise details: nothing generalises, so the held-out tiles stop it at once.
+    tiles = _tiny_tiles(rng, 10, t, s)
+    start = rng.normal(size=((3 * s) ** 2, k)).astype(np.float32) * 1e-3
+    high, kept = _refine_high_dictionary(start, dictionary, kernel, tiles, 2, s)
+    assert 0 <= kept <= 30 and high.shape == start.shape and np.isfinite(high).all()
+
+
+def test_image_level_option_fits_saves_and_magnifies(tmp_path, held_out):
+    model = CoupledDictionary(scale=3, method="sparse", n_atoms=64, n_iter=2, max_samples=8000,
+                              high_fit="image", random_state=0).fit(training_photos())
+    assert model.training_["image_fit_cells"] > 0
+    assert 0 <= model.training_["image_fit_iterations"] <= 30
+    path = tmp_path / "m.npz"
+    model.save(path)
+    again = CoupledDictionary.load(path)
+    assert again.high_fit == "image"
+    lr = degrade(held_out[1], 3)
+    np.testing.assert_array_equal(again.magnify(lr), model.magnify(lr))
+    bicubic = psnr_shaved(held_out[1], upscale_bicubic(lr, 3), 3)
+    assert psnr_shaved(held_out[1], model.magnify(lr), 3) > bicubic
+
+
+def test_image_level_option_is_for_the_sparse_method():
+    with pytest.raises(ParameterError, match="sparse method only"):
+        CoupledDictionary(method="anchored", high_fit="image").fit([np.zeros((60, 60))])
+    with pytest.raises(ParameterError, match="'patch' or 'image'"):
+        CoupledDictionary(high_fit="pixels").fit([np.zeros((60, 60))])

@@ -759,7 +759,29 @@ def test_consistency_and_ensemble_chunked_equal_whole(make_raster, run_dir, tiny
     ref = tiny_model.magnify(img, consistency=True, ensemble=True)
     assert np.abs(out - ref).max() <= 1e-9
     with rasterio.open(run_dir / "o.tif") as d:
-        assert d.tags()["GEOSR_CONSISTENCY"] == "yes" and d.tags()["GEOSR_ENSEMBLE"] == "yes"
+        tags, band = d.tags(), d.tags(1)
+    assert tags["GEOSR_CONSISTENCY"] == "yes" and tags["GEOSR_ENSEMBLE"] == "yes"
+    # The residual the blocks summed is the whole image's: degrade(output) - input.
+    r = tiny_model.context_radius(consistency=True)
+    _, resid = tiny_model.magnify_block(np.pad(img, r, mode="symmetric"), r, consistency=True,
+                                        ensemble=True, return_residual=True)
+    rms, worst = np.sqrt(np.mean(resid**2)), np.abs(resid).max()
+    (band_res,) = res.consistency
+    assert band_res.rms == pytest.approx(rms, rel=1e-6) and band_res.max == pytest.approx(worst, rel=1e-6)
+    assert float(band["GEOSR_CONSISTENCY_RMS"]) == pytest.approx(rms, rel=1e-5)
+    assert float(band["GEOSR_CONSISTENCY_MAX"]) == pytest.approx(worst, rel=1e-5)
+    percent = 100 * rms / (img.max() - img.min())
+    assert float(band["GEOSR_CONSISTENCY_RMS_PERCENT"]) == pytest.approx(percent, rel=1e-3)
+    assert band_res.within_tolerance and tags["GEOSR_CONSISTENCY_MET"] == "yes"
+    assert "0.5 %" in tags["GEOSR_CONSISTENCY_TOLERANCE"]
+
+
+def test_no_residual_tags_without_consistency(make_raster, run_dir, tiny_model):
+    src = make_raster(camera(30, 30).astype(np.uint8))
+    res = magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True)
+    assert res.consistency is None
+    with rasterio.open(run_dir / "o.tif") as d:
+        assert "GEOSR_CONSISTENCY_RMS" not in d.tags(1) and "GEOSR_CONSISTENCY_MET" not in d.tags()
 
 
 def test_shipped_model_when_none_is_given(make_raster, run_dir):

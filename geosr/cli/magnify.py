@@ -58,12 +58,20 @@ from . import options
     metavar="SIZE",
     help="Refuse outputs larger than SIZE uncompressed, e.g. 500G. Default 256G.",
 )
+@click.option(
+    "--no-space-check",
+    "no_space_check",
+    is_flag=True,
+    default=False,
+    help="Start even when the destination's disk has less room than the uncompressed "
+    "output (when compression will make it fit).",
+)
 @options.config_option
 @options.quiet_option
 @click.pass_context
 def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degradation, scale, method, bands, chunk, workers,
             scheduler, creation_options, cog, overwrite, consistency, ensemble, spectral_guard,
-            stac, max_output_bytes, quiet):
+            stac, max_output_bytes, no_space_check, quiet):
     """Magnify the raster SRC by an integer factor into DST.
 
     The CRS is kept, the geotransform refined, nodata and band metadata
@@ -97,6 +105,8 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
     extra = {"training": training} if training else {}
     if max_output_bytes is not None:
         extra["max_output_bytes"] = max_output_bytes
+    if no_space_check:
+        extra["check_free_space"] = False
     magnify_raster = options.library_function("geosr.workflow", "magnify_raster")
     result = options.call_library(
         magnify_raster,
@@ -122,6 +132,13 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
         _optional=options.defaulted(ctx, chunk_size="chunk", spectral_guard="spectral_guard"),
     )
     options.report(ctx, f"geosr: wrote {_summary(result, dst)}")
+    for residual in getattr(result, "consistency", None) or ():
+        if residual.rms is not None:
+            options.report(
+                ctx,
+                f"geosr: band {residual.band} consistency residual RMS {residual.rms:.4g} "
+                f"({residual.percent:.3g} % of its range), max {residual.max:.4g}",
+            )
     stac_path = getattr(result, "stac", None)
     if stac_path:
         options.report(ctx, f"geosr: wrote {stac_path}")

@@ -17,6 +17,7 @@ Warnings from the library are printed as one line ``geosr: warning: ...``.
 from __future__ import annotations
 
 import contextlib
+import logging
 import signal
 import sys
 import warnings
@@ -75,9 +76,37 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
     click.echo(f"{PREFIX}: warning: {_one_line(message)}", err=True)
 
 
+def _quiet_library_logs():
+    """Keep library log records off stderr: only geosr's own lines go there.
+
+    rasterio relays GDAL's errors and warnings as log records; without a
+    handler Python's last-resort handler prints them as bare lines next to
+    the one error line, and what they say reaches the user through that
+    error anyway.
+    """
+    logger = logging.getLogger("rasterio")
+    if not any(isinstance(h, logging.NullHandler) for h in logger.handlers):
+        logger.addHandler(logging.NullHandler())
+    # dask.distributed's client logs a warning for every task it reschedules
+    # (after a worker died, say); the run retries them and reports a failure
+    # itself as one line. A filter, because distributed sets its loggers'
+    # levels when it is imported.
+    client = logging.getLogger("distributed.client")
+    if not any(isinstance(f, _BelowError) for f in client.filters):
+        client.addFilter(_BelowError())
+
+
+class _BelowError(logging.Filter):
+    """Drops records below ERROR."""
+
+    def filter(self, record):
+        return record.levelno >= logging.ERROR
+
+
 @contextlib.contextmanager
 def _error_policy(ctx=None):
     """Turn every failure raised inside into a one-line :class:`CliError`."""
+    _quiet_library_logs()
     try:
         with warnings.catch_warnings():
             warnings.showwarning = _show_warning

@@ -61,6 +61,14 @@ from . import options
     help="Training features per anchor of the anchored method. Default 2048.",
 )
 @click.option(
+    "--high-fit",
+    type=click.Choice(["patch", "image"]),
+    default=None,
+    help="How the sparse method learns its high-res dictionary: least squares on the "
+    "training patches, or then refined on dense tiles through the overlap averaging "
+    "(stopped early on held-out tiles). Default patch.",
+)
+@click.option(
     "--samples",
     "max_samples",
     type=options.IntAtLeast(10),
@@ -84,8 +92,8 @@ from . import options
 @options.quiet_option
 @click.pass_context
 def train(ctx, references, output, scale, bands, shared, method, degradation, sigma,
-          n_atoms, sparsity, n_iter, neighbours, max_samples, random_state, chunk, workers,
-          scheduler, overwrite, quiet):
+          n_atoms, sparsity, n_iter, neighbours, high_fit, max_samples, random_state, chunk,
+          workers, scheduler, overwrite, quiet):
     """Learn a model from the high-resolution rasters HR_RASTER and write it to MODEL.
 
     Training pairs are the references and their degraded copies; choose the
@@ -119,6 +127,7 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
         "sparsity": sparsity,
         "n_iter": n_iter,
         "neighbours": neighbours,
+        "high_fit": high_fit,
         "max_samples": max_samples,
     }
     result = options.call_library(

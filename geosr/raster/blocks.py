@@ -29,6 +29,7 @@ except ImportError:  # pragma: no cover - older rasterio
 __all__ = [
     "BlockPlan",
     "BlockResult",
+    "ResidualStats",
     "read_block",
     "magnify_one_block",
     "magnify_block_values",
@@ -101,12 +102,72 @@ class BlockResult:
         0 for invalid, 255 for valid; only for ``MaskMode.MASK``.
     n_valid : int
         Valid output pixels over the magnified (not alpha) bands.
+    residual : ResidualStats or None
+        With the consistency option: the block's share of the residual.
     """
 
     block: Block
     data: np.ndarray
     mask: object
     n_valid: int
+    residual: object = None
+
+
+@dataclasses.dataclass
+class ResidualStats:
+    """Running sums of the consistency residual ``degrade(output) - input``.
+
+    One entry per output band (zeros for alpha bands), over valid low-res
+    pixels, measured on the magnified values before rounding to the output
+    type. Blocks combine with ``+``.
+
+    Attributes
+    ----------
+    sum_squares, max_abs, count : ndarray, shape (bands,)
+    low, high : ndarray, shape (bands,)
+        Smallest and largest valid input value (the band's range).
+    """
+
+    sum_squares: np.ndarray
+    max_abs: np.ndarray
+    count: np.ndarray
+    low: np.ndarray
+    high: np.ndarray
+
+    @classmethod
+    def empty(cls, bands):
+        zeros = np.zeros(bands)
+        return cls(zeros.copy(), zeros.copy(), zeros.copy(), np.full(bands, np.inf), np.full(bands, -np.inf))
+
+    def add_band(self, i, residual, source, valid):
+        """Account for band ``i`` of a block: residual and source on its cells."""
+        r = np.asarray(residual, dtype=np.float64)[valid]
+        if r.size == 0:
+            return
+        v = np.asarray(source, dtype=np.float64)[valid]
+        self.sum_squares[i] += float(np.dot(r, r))
+        self.max_abs[i] = max(self.max_abs[i], float(np.abs(r).max()))
+        self.count[i] += r.size
+        self.low[i] = min(self.low[i], float(v.min()))
+        self.high[i] = max(self.high[i], float(v.max()))
+
+    def __add__(self, other):
+        return ResidualStats(
+            self.sum_squares + other.sum_squares,
+            np.maximum(self.max_abs, other.max_abs),
+            self.count + other.count,
+            np.minimum(self.low, other.low),
+            np.maximum(self.high, other.high),
+        )
+
+    def rms(self):
+        """RMS per band (NaN where a band has no valid pixel)."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(self.count > 0, np.sqrt(self.sum_squares / np.maximum(self.count, 1)), np.nan)
+
+    def value_range(self):
+        """``high - low`` per band (0 where a band has no valid pixel)."""
+        return np.where(self.count > 0, self.high - self.low, 0.0)
 
 
 def spectral_guard_applies(requested, models, n_magnified):
@@ -179,7 +240,9 @@ def _block_values(plan, block, models, dtype):
     """Magnified values of every band of a block and where they are valid.
 
     Returns ``values`` of ``dtype`` (alpha bands hold their source values
-    replicated) and ``ok``, both of shape (bands, s*height, s*width).
+    replicated) and ``ok``, both of shape (bands, s*height, s*width), and
+    the block's :class:`ResidualStats` with the consistency option (else
+    None).
     """
     s, h = plan.scale, plan.halo
     data, valid = read_block(plan.path, plan.bands, block, h, plan.height, plan.width,
@@ -191,6 +254,7 @@ def _block_values(plan, block, models, dtype):
     magnified = [i for i, role in enumerate(plan.roles) if role >= 0]
     guard = plan.spectral_guard and len(magnified) >= 2
     bases = np.zeros((len(magnified),) + shape[1:], dtype=dtype) if guard else None
+    stats = ResidualStats.empty(len(plan.bands)) if plan.consistency else None
     for i, role in enumerate(plan.roles):
         v_in = valid[i][inner]
         if role < 0:
@@ -200,9 +264,13 @@ def _block_values(plan, block, models, dtype):
         if not v_in.any():
             continue
         v = None if valid[i].all() else valid[i]
-        values[i] = models[role].magnify_block(
-            data[i], h, v, consistency=plan.consistency, ensemble=plan.ensemble
-        )
+        if plan.consistency:
+            values[i], residual = models[role].magnify_block(
+                data[i], h, v, consistency=True, ensemble=plan.ensemble, return_residual=True
+            )
+            stats.add_band(i, residual, data[i][inner], v_in)
+        else:
+            values[i] = models[role].magnify_block(data[i], h, v, ensemble=plan.ensemble)
         ok[i] = nearest_magnify(v_in, s) & np.isfinite(values[i])
         if guard:
             bases[magnified.index(i)] = models[role].interpolate_block(
@@ -210,7 +278,7 @@ def _block_values(plan, block, models, dtype):
     if guard:
         # Pointwise across bands, so blocks and the whole image agree exactly.
         values[magnified] = guard_spectra(values[magnified], bases, ok[magnified].all(axis=0))
-    return values, ok
+    return values, ok, stats
 
 
 def magnify_one_block(plan, block, models):
@@ -230,7 +298,7 @@ def magnify_one_block(plan, block, models):
     """
     out_dtype = np.dtype(plan.dtype)
     work = np.float32 if out_dtype == np.float32 else np.float64
-    values, ok = _block_values(plan, block, models, work)
+    values, ok, stats = _block_values(plan, block, models, work)
     nodata = plan.nodata if plan.mode is MaskMode.NODATA else None
     out = np.empty(values.shape, dtype=out_dtype)
     all_ok = np.ones(values.shape[1:], dtype=bool)
@@ -245,7 +313,7 @@ def magnify_one_block(plan, block, models):
     mask = None
     if plan.mode is MaskMode.MASK:
         mask = np.where(all_ok, 255, 0).astype(np.uint8)
-    return BlockResult(block, out, mask, n_valid)
+    return BlockResult(block, out, mask, n_valid, stats)
 
 
 def magnify_block_values(plan, block, models):
@@ -262,6 +330,6 @@ def magnify_block_values(plan, block, models):
     -------
     ndarray, shape (bands, scale*height, scale*width)
     """
-    values, ok = _block_values(plan, block, models, np.dtype(plan.dtype))
+    values, ok, _ = _block_values(plan, block, models, np.dtype(plan.dtype))
     values[~ok] = np.nan
     return values

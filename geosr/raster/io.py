@@ -432,7 +432,7 @@ def check_free_space(folder, needed, name="destination"):
         raise DestinationError(
             f"The {name} folder {os.fspath(folder)!r} must have {_human(needed)} free for the "
             f"output (uncompressed size), got {_human(free)}; free some space, or pass "
-            "check_free_space=False if compression will make it fit"
+            "check_free_space=False (--no-space-check) if compression will make it fit"
         )
 
 

@@ -10,6 +10,9 @@ caller renames the result into place (see :class:`geosr.raster.io.TempFiles`).
 from __future__ import annotations
 
 import contextlib
+import errno
+import os
+import shutil
 import warnings
 
 import numpy as np
@@ -66,10 +69,33 @@ def output_profile(info, bands, dtype, scale, nodata, options):
     return profile
 
 
+def _error_detail(exc):
+    """The text of ``exc``, with the GDAL errors it chains to ("see previous exception")."""
+    texts = []
+    seen = exc
+    while seen is not None and len(texts) < 4:
+        text = " ".join(str(seen).split())
+        if text and text not in texts:
+            texts.append(text)
+        seen = seen.__cause__ or seen.__context__
+    detail = "; ".join(t for t in texts if "See previous exception" not in t) or "; ".join(texts)
+    return detail or type(exc).__name__
+
+
 def _destination_error(path, exc, what="writing"):
+    detail = _error_detail(exc)
+    if isinstance(exc, OSError) and exc.errno == errno.ENOSPC:
+        full = True
+    else:
+        try:
+            full = shutil.disk_usage(os.path.dirname(os.path.abspath(path))).free < 2**20
+        except OSError:
+            full = False
+    if full and "No space left" not in detail:
+        detail = f"No space left on device ({detail})"
     return DestinationError(
         f"The destination must be writable, got an error while {what} {str(path)!r} "
-        f"(disk full or folder removed?): {exc}"
+        f"(disk full or folder removed?): {detail}"
     )
 
 
@@ -133,6 +159,16 @@ class OutputRaster:
                 ds.colorinterp = tuple(info.colorinterp[b - 1] for b in bands)
             if info.transform.is_identity and info.gcps:
                 ds.gcps = (scale_gcps(info.gcps, self.scale), info.gcps_crs)
+        except READ_ERRORS as exc:
+            raise _destination_error(self.path, exc, "tagging") from None
+
+    def update_tags(self, tags, band_tags=()):
+        """Add dataset tags and per-band tags (one dict per band) before closing."""
+        try:
+            self.ds.update_tags(**tags)
+            for i, bt in enumerate(band_tags, start=1):
+                if bt:
+                    self.ds.update_tags(i, **bt)
         except READ_ERRORS as exc:
             raise _destination_error(self.path, exc, "tagging") from None
 
