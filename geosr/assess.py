@@ -30,6 +30,7 @@ from ._version import __version__
 from .enums import Degradation, Method
 from .errors import DestinationError, InputError, ModelError, ParameterError
 from .nodata import fill_invalid
+from .spectral import guard_spectra
 from .resample import (
     check_scale,
     crop_to_multiple,
@@ -112,6 +113,11 @@ def low_res_valid(valid, scale, degradation="bicubic", sigma=None):
     rows_bad = _window_any(bad, margin + start, len(taps), s, h, -2)
     both = _window_any(rows_bad, margin + start, len(taps), s, w, -1)
     return ~both
+
+
+def _nearest_mask(low_valid, scale):
+    """The low-res valid mask magnified by nearest neighbour."""
+    return np.repeat(np.repeat(low_valid, scale, axis=-2), scale, axis=-1)
 
 
 def _gdal_resample(low, out_shape, resampling, transform=None, crs=None):
@@ -239,7 +245,8 @@ def _write_markdown(path, result, band_names, figures):
         f"{p['valid_pixels']} valid pixels compared.",
         "",
         f"geosr {result['geosr_version']}; model: {result['model']['source']} "
-        f"(method {result['model']['method']}, sha256 {result['model_sha256']}).",
+        f"(method {result['model']['method']}, sha256 {result['model_sha256']}); spectral guard "
+        f"{'on' if result['model']['spectral_guard'] else 'off'}.",
         "",
         "The reference was degraded by the scale, magnified back by each method and compared "
         "with the reference over valid pixels (Wald, Ranchin & Mangolini, PE&RS 1997). "
@@ -415,6 +422,7 @@ def assess_raster(
     bands=None,
     consistency=False,
     ensemble=False,
+    spectral_guard=True,
     training=None,
     crop_size=96,
     chunk_size=None,
@@ -463,6 +471,10 @@ def assess_raster(
         1-based bands to assess; default every non-alpha band.
     consistency, ensemble : bool
         Options of :meth:`CoupledDictionary.magnify`.
+    spectral_guard : bool
+        With two or more bands, limit how far geosr's per-band detail turns
+        each pixel's spectrum (:func:`geosr.spectral.guard_spectra`), as
+        ``geosr magnify`` does by default.
     training : dict, optional
         CoupledDictionary parameters for ``self_train`` (plus ``shared``),
         over :data:`SELF_TRAIN_DEFAULTS`.
@@ -509,6 +521,8 @@ def assess_raster(
     degradation_taps(s, deg_name, sigma_used)  # validates sigma
     if method is not None:
         method = str(Method.parse(method, "method"))
+    if not isinstance(spectral_guard, (bool, np.bool_)):
+        raise ParameterError(f"The 'spectral_guard' parameter must be True or False, got {spectral_guard!r}")
     if workers not in (None, 0, 1) or scheduler is not None:
         raise ParameterError(
             "The 'workers' and 'scheduler' parameters must be unset for assess_raster, which "
@@ -561,7 +575,7 @@ def assess_raster(
     if not low_valid.any():
         raise InputError("The reference must have a low-res cell whose degradation reads only valid pixels, got none")
     low = np.stack([fill_invalid(low[b], low_valid) for b in range(n_bands)])
-    eval_valid = np.repeat(np.repeat(low_valid, s, axis=0), s, axis=1) & valid.all(axis=0)
+    eval_valid = _nearest_mask(low_valid, s) & valid.all(axis=0)
     if not eval_valid.any():
         raise InputError("The reference must keep at least one valid pixel to compare, got none")
 
@@ -589,6 +603,14 @@ def assess_raster(
             low[b], valid=low_valid, consistency=consistency, ensemble=ensemble), dtype=np.float64)
         for b in range(n_bands)
     ])
+    guarded = bool(spectral_guard) and n_bands >= 2 and all(hasattr(m, "interpolate") for m in models)
+    if guarded:
+        base = np.stack([
+            np.asarray(models[0 if len(models) == 1 else b].interpolate(low[b], valid=low_valid),
+                       dtype=np.float64)
+            for b in range(n_bands)
+        ])
+        outputs["geosr"] = guard_spectra(outputs["geosr"], base, _nearest_mask(low_valid, s))
     lr_transform = transform @ Affine.scale(s)
     outputs["bicubic"] = _gdal_resample(low, (rows, cols), Resampling.cubic, lr_transform, crs)
     outputs["lanczos"] = _gdal_resample(low, (rows, cols), Resampling.lanczos, lr_transform, crs)
@@ -611,7 +633,8 @@ def assess_raster(
     result["geosr_version"] = __version__
     result["model_sha256"] = shas[0] if len(shas) == 1 else shas
     result["model"] = {"source": source, "method": ", ".join(methods_used), "count": len(models),
-                       "consistency": bool(consistency), "ensemble": bool(ensemble)}
+                       "consistency": bool(consistency), "ensemble": bool(ensemble),
+                       "spectral_guard": guarded}
     result["protocol"] = {
         "name": "Wald, Ranchin & Mangolini (1997)",
         "reference": os.path.basename(path),

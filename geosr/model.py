@@ -878,11 +878,39 @@ class CoupledDictionary(BaseEstimator):
             context makes it exact at the window's edges). Meaningless at
             invalid pixels.
         """
-        self._check_fitted()
         if return_residual and not consistency:
             raise ParameterError(
                 "The 'return_residual' parameter needs consistency=True, got consistency=False"
             )
+        block, need, dtype, h, w = self._prepare_block(block, halo, valid, consistency)
+        if block is None:
+            out = np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+            return (out, np.zeros((h, w), dtype=dtype)) if return_residual else out
+        if not ensemble:
+            out, residual = self._magnify_padded(block, need, consistency)
+            return (out, residual) if return_residual else out
+        acc = res_acc = None
+        for k in range(8):
+            out, residual = self._magnify_padded(_dihedral(block, k), need, consistency)
+            out = _dihedral_inverse(out, k)
+            acc = out.copy() if acc is None else acc + out
+            if residual is not None:
+                # The degradation is separable and symmetric, so it commutes with
+                # flips and rotations: the mean's residual is the residuals' mean.
+                residual = _dihedral_inverse(residual, k)
+                res_acc = residual.copy() if res_acc is None else res_acc + residual
+        acc /= dtype.type(8)
+        if return_residual:
+            return acc, res_acc / dtype.type(8)
+        return acc
+
+    def _prepare_block(self, block, halo, valid, consistency):
+        """Checked, cropped and filled block with the halo the options need.
+
+        Returns ``(block, need, dtype, h, w)``; ``block`` is None when no
+        pixel of the window is valid.
+        """
+        self._check_fitted()
         block = self._check_image(block, "block")
         dtype = _work_dtype(block)
         block = block.astype(dtype, copy=False)
@@ -904,29 +932,58 @@ class CoupledDictionary(BaseEstimator):
         if masked:
             valid = valid[crop : valid.shape[0] - crop, crop : valid.shape[1] - crop]
             if not valid.any():
-                out = np.zeros((self._scale * h, self._scale * w), dtype=dtype)
-                return (out, np.zeros((h, w), dtype=dtype)) if return_residual else out
+                return None, need, dtype, h, w
             block = fill_invalid(block, valid)[FILL_DISTANCE:-FILL_DISTANCE, FILL_DISTANCE:-FILL_DISTANCE]
             need -= FILL_DISTANCE
         elif valid is not None:
             block = np.where(valid, block, 0).astype(dtype, copy=False)
-        if not ensemble:
-            out, residual = self._magnify_padded(block, need, consistency)
-            return (out, residual) if return_residual else out
-        acc = res_acc = None
-        for k in range(8):
-            out, residual = self._magnify_padded(_dihedral(block, k), need, consistency)
-            out = _dihedral_inverse(out, k)
-            acc = out.copy() if acc is None else acc + out
-            if residual is not None:
-                # The degradation is separable and symmetric, so it commutes with
-                # flips and rotations: the mean's residual is the residuals' mean.
-                residual = _dihedral_inverse(residual, k)
-                res_acc = residual.copy() if res_acc is None else res_acc + residual
-        acc /= dtype.type(8)
-        if return_residual:
-            return acc, res_acc / dtype.type(8)
-        return acc
+        return block, need, dtype, h, w
+
+    def interpolate_block(self, block, halo, valid=None, *, consistency=False):
+        """The interpolation that :meth:`magnify_block` adds its detail to.
+
+        Parameters
+        ----------
+        block, halo, valid, consistency :
+            As in :meth:`magnify_block` (``consistency`` only decides the
+            halo the block must carry).
+
+        Returns
+        -------
+        ndarray, shape (scale*h, scale*w)
+            Bicubic interpolation of the window (invalid pixels filled the
+            same way as for magnifying); the detail of ``magnify_block`` is
+            its output minus this.
+        """
+        block, need, dtype, h, w = self._prepare_block(block, halo, valid, consistency)
+        if block is None:
+            return np.zeros((self._scale * h, self._scale * w), dtype=dtype)
+        m = UPSCALE_MARGIN
+        crop = need - m
+        return upscale_valid(block[crop : block.shape[0] - crop, crop : block.shape[1] - crop],
+                             self._scale, m)
+
+    def interpolate(self, image, valid=None):
+        """The interpolation that :meth:`magnify` adds its detail to.
+
+        Parameters
+        ----------
+        image : ndarray, shape (h, w)
+        valid : ndarray of bool, shape (h, w), optional
+
+        Returns
+        -------
+        ndarray, shape (scale*h, scale*w)
+            float32 for float32 input, float64 otherwise.
+        """
+        self._check_fitted()
+        image = self._check_image(image, "image")
+        valid = self._valid_mask(image, valid)
+        masked = valid is not None and not valid.all()
+        r = self.context_radius(masked=masked)
+        block = np.pad(image, r, mode="symmetric")
+        vblock = None if valid is None else np.pad(valid, r, mode="symmetric")
+        return self.interpolate_block(block, r, vblock)
 
     def _magnify_padded(self, block, halo, consistency):
         """Magnify a block whose halo is exactly what the options need.

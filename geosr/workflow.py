@@ -19,7 +19,7 @@ from .enums import Method
 from .errors import InputError, ModelError, ParameterError
 from .progress import Progress
 from .raster import GeoreferencingWarning
-from .raster.blocks import BlockPlan, ResidualStats, magnify_one_block
+from .raster.blocks import BlockPlan, ResidualStats, magnify_one_block, spectral_guard_applies
 from .raster.io import (
     TempFiles,
     check_bands,
@@ -260,6 +260,7 @@ def magnify_raster(
     creation_options=None,
     consistency=False,
     ensemble=False,
+    spectral_guard=True,
     stac=False,
     quiet=False,
     retries=2,
@@ -313,6 +314,9 @@ def magnify_raster(
         with ``cog=True``); checked by GDAL before the run.
     consistency, ensemble : bool
         Options of the model's reconstruction.
+    spectral_guard : bool
+        With two or more magnified bands, limit how far the per-band detail
+        turns each pixel's spectrum (:func:`geosr.spectral.guard_spectra`).
     stac : bool
         Also write a STAC Item sidecar (``dst`` with ``.json``).
     quiet : bool
@@ -353,6 +357,7 @@ def magnify_raster(
     cog = _check_bool(cog, "cog")
     consistency = _check_bool(consistency, "consistency")
     ensemble = _check_bool(ensemble, "ensemble")
+    spectral_guard = _check_bool(spectral_guard, "spectral_guard")
     stac = _check_bool(stac, "stac")
     quiet = _check_bool(quiet, "quiet")
     self_train = _check_bool(self_train, "self_train")
@@ -449,6 +454,7 @@ def magnify_raster(
         masked=masked or mode is not MaskMode.NONE,
         consistency=consistency,
         ensemble=ensemble,
+        spectral_guard=spectral_guard_applies(spectral_guard, models, len(model_bands)),
         read_retries=retries,
     )
     blocks = block_grid(info.height, info.width, chunk)
@@ -481,6 +487,7 @@ def magnify_raster(
     tags.update(provenance_tags(
         scale=scale, method=method_name, model_sha256=shas, source_name=info.name,
         created=created, consistency=consistency, ensemble=ensemble,
+        spectral_guard=plan.spectral_guard,
     ))
     band_tags = []
     for b, r in zip(band_sel, roles):
@@ -751,7 +758,7 @@ def _array_block(plan, block, models):
 
 
 def magnify_array(src, model=None, *, scale=None, bands=None, chunk_size=1024,
-                  consistency=False, ensemble=False):
+                  consistency=False, ensemble=False, spectral_guard=True):
     """The magnified raster as a lazy dask array, one task per block.
 
     Each task reads its block plus the halo the model needs from ``src``
@@ -771,6 +778,8 @@ def magnify_array(src, model=None, *, scale=None, bands=None, chunk_size=1024,
     chunk_size : int
         Block side in source pixels; array chunks are ``scale`` times that.
     consistency, ensemble : bool
+    spectral_guard : bool
+        As in :func:`magnify_raster`.
 
     Returns
     -------
@@ -783,6 +792,7 @@ def magnify_array(src, model=None, *, scale=None, bands=None, chunk_size=1024,
 
     consistency = _check_bool(consistency, "consistency")
     ensemble = _check_bool(ensemble, "ensemble")
+    spectral_guard = _check_bool(spectral_guard, "spectral_guard")
     if scale is not None:
         scale = check_scale(scale)
     check_chunk_size(chunk_size)
@@ -812,6 +822,7 @@ def magnify_array(src, model=None, *, scale=None, bands=None, chunk_size=1024,
         path=info.path, height=info.height, width=info.width, bands=band_sel, roles=roles,
         halo=halo, scale=scale, dtype=work, mode=mode, nodata=nodata,
         masked=masked or mode is not MaskMode.NONE, consistency=consistency, ensemble=ensemble,
+        spectral_guard=spectral_guard_applies(spectral_guard, models, len(model_bands)),
     )
     blocks = block_grid(info.height, info.width, chunk)
     name = "geosr-magnify-" + tokenize(info.path, plan, [_model_sha(m) for m in models], chunk)

@@ -315,13 +315,14 @@ def test_assess_wiring(recorder):
     calls = recorder(assess_module, "assess_raster")
     result = run("assess", "ref.tif", "-s", "3", "-o", "rep", "--self-train", "--atoms", "64",
                  "--degradation", "gaussian", "--sigma", "1.2", "--bands", "1-2", "--crop", "64",
-                 "--consistency", "-q")
+                 "--consistency", "--no-spectral-guard", "-q")
     assert result.exit_code == 0, result.stderr
     (args, kw), = calls
     assert args == ("ref.tif", "rep", 3)
     assert kw == {
         "model": None, "self_train": True, "method": None, "sigma": 1.2, "bands": [1, 2],
-        "consistency": True, "ensemble": False, "overwrite": False, "quiet": True,
+        "consistency": True, "ensemble": False, "spectral_guard": False, "overwrite": False,
+        "quiet": True,
         "training": {"n_atoms": 64}, "degradation": "gaussian", "crop_size": 64,
     }
     result = run("assess", "ref.tif", "-s", "3", "-o", "rep", "--sigma", "1.2")

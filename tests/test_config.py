@@ -310,3 +310,18 @@ def test_example_configs_drive_magnify(path, calls, tmp_path):
     result = magnify("--config", path, *extra)
     assert result.exit_code == 0, result.stderr
     assert calls[-1]["scale"] == read_toml(path)["scale"]
+
+
+def test_spectral_guard_key_and_flags(tmp_path, calls):
+    assert magnify("--scale", 2).exit_code == 0
+    assert calls[-1]["spectral_guard"] is True  # on by default
+    path = write(tmp_path, "[magnify]\nspectral-guard = false\n")
+    result = magnify("--config", path, "--scale", 2)
+    assert result.exit_code == 0, result.stderr
+    assert calls[-1]["spectral_guard"] is False
+    result = magnify("--config", path, "--scale", 2, "--spectral-guard")
+    assert result.exit_code == 0, result.stderr
+    assert calls[-1]["spectral_guard"] is True  # the command line wins
+    bad = write(tmp_path, "spectral-guard = \"maybe\"\n", name="bad.toml")
+    result = magnify("--config", bad, "--scale", 2)
+    assert result.exit_code != 0 and "spectral-guard" in one_line(result)

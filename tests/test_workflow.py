@@ -795,3 +795,64 @@ def test_shipped_model_when_none_is_given(make_raster, run_dir):
     with rasterio.open(run_dir / "o.tif") as d:
         assert d.tags()["GEOSR_MODEL_SHA256"] == shipped.sha256_
         assert np.abs(d.read(1).astype(float) - shipped.magnify(camera(24, 24))).max() <= 1
+
+
+# ------------------------------------------------------------ spectral guard
+def _guard_tag(path):
+    with rasterio.open(path) as ds:
+        return ds.tags()["GEOSR_SPECTRAL_GUARD"]
+
+
+def _three_bands(rows, cols):
+    """Three bands with different local colour (camera, mirrored and shifted)."""
+    base = camera(rows, cols).astype(np.float64)
+    return np.stack([base, base[:, ::-1] * 0.6 + 20, np.roll(base, 5, axis=0) * 0.3 + 5])
+
+
+@pytest.mark.parametrize("dtype,tol", [("float32", 2e-4), ("float64", 1e-9)])
+def test_spectral_guard_chunked_equals_whole(make_raster, run_dir, tiny_model, dtype, tol):
+    from geosr.spectral import guard_spectra
+    from geosr.workflow import magnify_array
+
+    rows, cols = 47, 53
+    img = _three_bands(rows, cols).astype(dtype)
+    valid = _holes(rows, cols, seed=5)
+    img[:, ~valid] = np.nan
+    src = make_raster(img, nodata=float("nan"))
+    raw = np.stack([_whole(tiny_model, img[b], valid) for b in range(3)])
+    base = np.stack([tiny_model.interpolate(img[b], valid) for b in range(3)])
+    hr_valid = np.repeat(np.repeat(valid, 2, 0), 2, 1)
+    expected = guard_spectra(raw, base, hr_valid)
+    assert np.nanmax(np.abs(expected - raw)) > 1e-3  # the guard does change pixels here
+    for chunk in (max(MIN_CHUNK, tiny_model.context_radius(masked=True)), 21, 1024):
+        dst = run_dir / f"g{chunk}.tif"
+        magnify_raster(src, dst, tiny_model, chunk_size=chunk, quiet=True)
+        out = _read(dst)[0]
+        assert _guard_tag(dst) == "yes"
+        assert (np.isnan(out) == np.isnan(expected)).all()
+        assert np.nanmax(np.abs(out - expected)) <= tol, f"chunk {chunk}"
+        arr = magnify_array(src, tiny_model, chunk_size=chunk).compute()
+        assert np.nanmax(np.abs(arr - expected)) <= tol
+    dst = run_dir / "off.tif"
+    magnify_raster(src, dst, tiny_model, chunk_size=21, quiet=True, spectral_guard=False)
+    out = _read(dst)[0]
+    assert _guard_tag(dst) == "no"
+    assert np.nanmax(np.abs(out - raw)) <= tol
+
+
+def test_spectral_guard_skips_alpha_and_single_band(make_raster, run_dir, tiny_model):
+    img = camera(30, 30).astype(np.uint8)
+    dst = run_dir / "one.tif"
+    magnify_raster(make_raster(img, name="one_src.tif"), dst, tiny_model, quiet=True)
+    assert _guard_tag(dst) == "no"  # one magnified band: nothing to guard
+    expected = np.clip(np.rint(tiny_model.magnify(img.astype(np.float64))), 0, 255)
+    assert np.abs(_read(dst)[0][0].astype(float) - expected).max() <= 1
+    rgb = np.stack([camera(32, 36, 100 + 40 * k, 90) for k in range(3)]).astype(np.uint8)
+    alpha = np.full((32, 36), 255, np.uint8)
+    alpha[20:, 20:] = 128
+    src = make_raster(np.concatenate([rgb, alpha[None]]), photometric="RGB", alpha="YES")
+    dst = run_dir / "rgba.tif"
+    magnify_raster(src, dst, tiny_model, quiet=True)
+    assert _guard_tag(dst) == "yes"
+    # The alpha band is outside the guard: still exactly nearest neighbour.
+    assert np.array_equal(_read(dst)[0][3], np.repeat(np.repeat(alpha, 2, 0), 2, 1))

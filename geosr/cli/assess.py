@@ -52,6 +52,7 @@ def _assess_function():
 @options.bands_option
 @click.option("--consistency", is_flag=True, default=False, help="Back-project the output.")
 @click.option("--ensemble", is_flag=True, default=False, help="Average the 8 flips and rotations.")
+@options.spectral_guard_option
 @click.option(
     "--crop",
     "crop_size",
@@ -65,7 +66,8 @@ def _assess_function():
 @options.quiet_option
 @click.pass_context
 def assess(ctx, reference, report_dir, scale, model, self_train, train_atoms, train_samples,
-           method, degradation, sigma, bands, consistency, ensemble, crop_size, overwrite, quiet):
+           method, degradation, sigma, bands, consistency, ensemble, spectral_guard, crop_size, overwrite,
+           quiet):
     """Degrade REFERENCE by --scale, magnify it back, and compare with REFERENCE.
 
     The same is done with GDAL's bicubic and Lanczos resampling and nearest
@@ -106,9 +108,11 @@ def assess(ctx, reference, report_dir, scale, model, self_train, train_atoms, tr
         bands=list(bands) if bands else None,
         consistency=consistency,
         ensemble=ensemble,
+        spectral_guard=spectral_guard,
         overwrite=overwrite,
         quiet=quiet,
         **extra,
+        _optional=options.defaulted(ctx, spectral_guard="spectral_guard"),
     )
     options.report(ctx, f"geosr: {_summary(result, report_dir)}")
 

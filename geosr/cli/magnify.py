@@ -46,6 +46,7 @@ from . import options
     default=False,
     help="Average the 8 flips and rotations (slower, a little better).",
 )
+@options.spectral_guard_option
 @click.option(
     "--stac", is_flag=True, default=False, help="Also write a STAC Item JSON beside DST."
 )
@@ -69,8 +70,8 @@ from . import options
 @options.quiet_option
 @click.pass_context
 def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degradation, scale, method, bands, chunk, workers,
-            scheduler, creation_options, cog, overwrite, consistency, ensemble, stac,
-            max_output_bytes, no_space_check, quiet):
+            scheduler, creation_options, cog, overwrite, consistency, ensemble, spectral_guard,
+            stac, max_output_bytes, no_space_check, quiet):
     """Magnify the raster SRC by an integer factor into DST.
 
     The CRS is kept, the geotransform refined, nodata and band metadata
@@ -123,11 +124,12 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
         creation_options=dict(creation_options) or None,
         consistency=consistency,
         ensemble=ensemble,
+        spectral_guard=spectral_guard,
         stac=stac,
         quiet=quiet,
         self_train=self_train,
         **extra,
-        _optional=options.defaulted(ctx, chunk_size="chunk"),
+        _optional=options.defaulted(ctx, chunk_size="chunk", spectral_guard="spectral_guard"),
     )
     options.report(ctx, f"geosr: wrote {_summary(result, dst)}")
     for residual in getattr(result, "consistency", None) or ():

@@ -41,6 +41,7 @@ __all__ = [
     "scheduler_option",
     "quiet_option",
     "overwrite_option",
+    "spectral_guard_option",
     "config_option",
     "config_schema",
     "exclusive",
@@ -404,6 +405,16 @@ quiet_option = click.option(
 
 overwrite_option = click.option(
     "--overwrite", is_flag=True, default=False, help="Replace an existing output."
+)
+
+
+spectral_guard_option = click.option(
+    "--spectral-guard/--no-spectral-guard",
+    "spectral_guard",
+    default=True,
+    show_default=True,
+    help="With 2+ magnified bands, cap how far the per-band detail turns each pixel's "
+    "spectrum (keeps SAM at or below bicubic's). Config key: spectral-guard.",
 )
 
 

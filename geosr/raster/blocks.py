@@ -17,6 +17,7 @@ import rasterio
 from rasterio.errors import NotGeoreferencedWarning, RasterioError
 
 from ..errors import InputError
+from ..spectral import guard_spectra
 from .masks import MaskMode, nearest_magnify, to_output_dtype
 from .windows import Block, halo_read, pad_symmetric
 
@@ -32,6 +33,7 @@ __all__ = [
     "read_block",
     "magnify_one_block",
     "magnify_block_values",
+    "spectral_guard_applies",
     "READ_ERRORS",
 ]
 
@@ -64,6 +66,9 @@ class BlockPlan:
     masked : bool
         Whether the source has mask bands worth reading.
     consistency, ensemble : bool
+    spectral_guard : bool
+        Apply :func:`geosr.spectral.guard_spectra` across the magnified
+        (not alpha) bands when there are at least two.
     read_retries : int
         Extra attempts (each with a fresh handle) when GDAL fails to read.
     """
@@ -81,6 +86,7 @@ class BlockPlan:
     masked: bool
     consistency: bool = False
     ensemble: bool = False
+    spectral_guard: bool = False
     read_retries: int = 2
 
 
@@ -164,6 +170,18 @@ class ResidualStats:
         return np.where(self.count > 0, self.high - self.low, 0.0)
 
 
+def spectral_guard_applies(requested, models, n_magnified):
+    """Whether a run applies the cross-band spectral guard.
+
+    Only with two or more magnified (not alpha) bands, and only with models
+    that give the interpolation their detail is added to
+    (``interpolate_block``).
+    """
+    return bool(requested) and n_magnified >= 2 and all(
+        hasattr(m, "interpolate_block") for m in models
+    )
+
+
 def read_block(path, bands, block, halo, height, width, *, masked=True, retries=2):
     """Read a block and its halo; extend the halo symmetrically outside the raster.
 
@@ -233,6 +251,9 @@ def _block_values(plan, block, models, dtype):
     shape = (len(plan.bands), s * block.height, s * block.width)
     values = np.zeros(shape, dtype=dtype)
     ok = np.zeros(shape, dtype=bool)
+    magnified = [i for i, role in enumerate(plan.roles) if role >= 0]
+    guard = plan.spectral_guard and len(magnified) >= 2
+    bases = np.zeros((len(magnified),) + shape[1:], dtype=dtype) if guard else None
     stats = ResidualStats.empty(len(plan.bands)) if plan.consistency else None
     for i, role in enumerate(plan.roles):
         v_in = valid[i][inner]
@@ -251,6 +272,12 @@ def _block_values(plan, block, models, dtype):
         else:
             values[i] = models[role].magnify_block(data[i], h, v, ensemble=plan.ensemble)
         ok[i] = nearest_magnify(v_in, s) & np.isfinite(values[i])
+        if guard:
+            bases[magnified.index(i)] = models[role].interpolate_block(
+                data[i], h, v, consistency=plan.consistency)
+    if guard:
+        # Pointwise across bands, so blocks and the whole image agree exactly.
+        values[magnified] = guard_spectra(values[magnified], bases, ok[magnified].all(axis=0))
     return values, ok, stats
 
 

@@ -54,7 +54,7 @@ def image_description(scale, method, source_name):
 
 
 def provenance_tags(*, scale, method, model_sha256, source_name, created=None,
-                    consistency=False, ensemble=False):
+                    consistency=False, ensemble=False, spectral_guard=False):
     """The dataset-level ``GEOSR_*`` tags and the image description.
 
     Parameters
@@ -67,6 +67,8 @@ def provenance_tags(*, scale, method, model_sha256, source_name, created=None,
     created : str, optional
         ISO 8601 UTC time; now by default.
     consistency, ensemble : bool
+    spectral_guard : bool
+        Whether the cross-band spectral guard was applied.
 
     Returns
     -------
@@ -85,6 +87,7 @@ def provenance_tags(*, scale, method, model_sha256, source_name, created=None,
         "GEOSR_SOURCE": str(source_name),
         "GEOSR_CONSISTENCY": "yes" if consistency else "no",
         "GEOSR_ENSEMBLE": "yes" if ensemble else "no",
+        "GEOSR_SPECTRAL_GUARD": "yes" if spectral_guard else "no",
         "TIFFTAG_IMAGEDESCRIPTION": image_description(scale, method, source_name),
         "TIFFTAG_SOFTWARE": f"geosr {__version__}",
     }
