@@ -603,7 +603,9 @@ def assess_raster(
             low[b], valid=low_valid, consistency=consistency, ensemble=ensemble), dtype=np.float64)
         for b in range(n_bands)
     ])
-    guarded = bool(spectral_guard) and n_bands >= 2 and all(hasattr(m, "interpolate") for m in models)
+    # As in the raster pipeline: never with consistency (measured pixels take precedence).
+    guarded = bool(spectral_guard) and not consistency and n_bands >= 2 and all(
+        hasattr(m, "interpolate") for m in models)
     if guarded:
         base = np.stack([
             np.asarray(models[0 if len(models) == 1 else b].interpolate(low[b], valid=low_valid),

@@ -317,6 +317,8 @@ def magnify_raster(
     spectral_guard : bool
         With two or more magnified bands, limit how far the per-band detail
         turns each pixel's spectrum (:func:`geosr.spectral.guard_spectra`).
+        Not applied with ``consistency`` (measured pixels take precedence);
+        the ``GEOSR_SPECTRAL_GUARD`` tag says whether it was.
     stac : bool
         Also write a STAC Item sidecar (``dst`` with ``.json``).
     quiet : bool
@@ -454,7 +456,7 @@ def magnify_raster(
         masked=masked or mode is not MaskMode.NONE,
         consistency=consistency,
         ensemble=ensemble,
-        spectral_guard=spectral_guard_applies(spectral_guard, models, len(model_bands)),
+        spectral_guard=spectral_guard_applies(spectral_guard, models, len(model_bands), consistency),
         read_retries=retries,
     )
     blocks = block_grid(info.height, info.width, chunk)
@@ -822,7 +824,7 @@ def magnify_array(src, model=None, *, scale=None, bands=None, chunk_size=1024,
         path=info.path, height=info.height, width=info.width, bands=band_sel, roles=roles,
         halo=halo, scale=scale, dtype=work, mode=mode, nodata=nodata,
         masked=masked or mode is not MaskMode.NONE, consistency=consistency, ensemble=ensemble,
-        spectral_guard=spectral_guard_applies(spectral_guard, models, len(model_bands)),
+        spectral_guard=spectral_guard_applies(spectral_guard, models, len(model_bands), consistency),
     )
     blocks = block_grid(info.height, info.width, chunk)
     name = "geosr-magnify-" + tokenize(info.path, plan, [_model_sha(m) for m in models], chunk)

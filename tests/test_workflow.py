@@ -856,3 +856,17 @@ def test_spectral_guard_skips_alpha_and_single_band(make_raster, run_dir, tiny_m
     assert _guard_tag(dst) == "yes"
     # The alpha band is outside the guard: still exactly nearest neighbour.
     assert np.array_equal(_read(dst)[0][3], np.repeat(np.repeat(alpha, 2, 0), 2, 1))
+
+
+def test_spectral_guard_gives_way_to_consistency(make_raster, run_dir, tiny_model):
+    # Back-projection makes the output consistent with the measured pixels; the guard
+    # would move it away again, so it is not applied (and the tag says so).
+    img = np.stack([camera(40, 40), camera(40, 40)[::-1], camera(40, 40)[:, ::-1]]).astype(np.float64)
+    src = make_raster(img)
+    magnify_raster(src, run_dir / "c.tif", tiny_model, consistency=True, quiet=True)
+    with rasterio.open(run_dir / "c.tif") as d:
+        assert d.tags()["GEOSR_SPECTRAL_GUARD"] == "no" and d.tags()["GEOSR_CONSISTENCY_MET"] == "yes"
+        out = d.read()
+    for b in range(3):
+        ref = tiny_model.magnify(img[b], consistency=True)
+        assert np.abs(out[b] - ref).max() <= 1e-9

@@ -170,14 +170,16 @@ class ResidualStats:
         return np.where(self.count > 0, self.high - self.low, 0.0)
 
 
-def spectral_guard_applies(requested, models, n_magnified):
+def spectral_guard_applies(requested, models, n_magnified, consistency=False):
     """Whether a run applies the cross-band spectral guard.
 
-    Only with two or more magnified (not alpha) bands, and only with models
+    Only with two or more magnified (not alpha) bands, only with models
     that give the interpolation their detail is added to
-    (``interpolate_block``).
+    (``interpolate_block``), and never with the consistency option: the
+    guard would move the output away from what back-projection made
+    consistent with the measured pixels, and those take precedence.
     """
-    return bool(requested) and n_magnified >= 2 and all(
+    return bool(requested) and not consistency and n_magnified >= 2 and all(
         hasattr(m, "interpolate_block") for m in models
     )
 
