@@ -26,9 +26,11 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from _common import best_of, result  # noqa: E402
 
-from geosr.model import _CENTRE, _apply_projections, _nearest_anchors, default_model  # noqa: E402
-from geosr.patches import FEATURE_RADIUS, lowres_windows  # noqa: E402
-from geosr.sparse import omp_codes  # noqa: E402
+from geosr.core.model import _CENTRE, _apply_projections, _nearest_anchors
+
+from geosr.modelfile import default_model  # noqa: E402
+from geosr.core.features import FEATURE_RADIUS, lowres_windows  # noqa: E402
+from geosr.core.sparse import omp_codes  # noqa: E402
 
 
 def in_two_threads(fn, *arrays):

@@ -27,8 +27,8 @@ LIMIT_BYTES = 1.5e9
 
 CHILD = r'''
 import json, resource, sys, time
-from geosr.model import default_model
-from geosr.workflow import magnify_raster
+from geosr.modelfile import default_model
+from geosr.pipeline.magnify import magnify_raster
 model = default_model(2)
 base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 t = time.perf_counter()

@@ -35,8 +35,10 @@ import numpy as np
 from skimage import color, data
 from skimage.metrics import peak_signal_noise_ratio
 
-from geosr.model import CoupledDictionary, default_model
-from geosr.resample import crop_to_multiple, degrade, upscale_bicubic
+from geosr.core.model import CoupledDictionary
+
+from geosr.modelfile import default_model
+from geosr.core.resample import crop_to_multiple, degrade, upscale_bicubic
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "scripts"))

@@ -22,8 +22,8 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from _common import make_raster, result  # noqa: E402
 
-from geosr.model import default_model  # noqa: E402
-from geosr.workflow import magnify_raster  # noqa: E402
+from geosr.modelfile import default_model  # noqa: E402
+from geosr.pipeline.magnify import magnify_raster  # noqa: E402
 
 
 def timed(src, dst, model, **kw):

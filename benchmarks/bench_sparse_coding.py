@@ -7,11 +7,11 @@ Workload (the sparse path's defaults at x3): a 30 x 1000 dictionary of
 normalised random vectors, 3 atoms per signal, float32. Signals are sparse
 combinations of the atoms plus noise, like the training features K-SVD sees.
 
-- ``geosr.sparse.batch_omp`` on ``--signals`` signals (best of ``--repeat``);
+- ``geosr.core.sparse.batch_omp`` on ``--signals`` signals (best of ``--repeat``);
 - ``sklearn.linear_model.orthogonal_mp_gram(G, D.T @ X)`` on the first
   ``--sklearn-signals`` of them (it codes one signal at a time, so a subset
   gives its per-signal time); the supports of the two are compared there;
-- ``geosr.sparse.ksvd`` on ``--ksvd-signals`` signals, 1000 atoms, L = 3,
+- ``geosr.core.sparse.ksvd`` on ``--ksvd-signals`` signals, 1000 atoms, L = 3,
   ``--ksvd-iter`` iterations.
 
 Prints a plain table and one ``RESULT {json}`` line per figure (the

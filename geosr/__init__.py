@@ -1,7 +1,10 @@
 """geosr: magnify georeferenced rasters with a learned sparse-representation prior.
 
 The output's fine detail is synthesized by a statistical model, not measured.
-Public names are loaded on first use, so that ``geosr --help`` stays fast.
+
+Public names are imported on first use, so that ``geosr --help`` stays fast;
+``geosr/__init__.pyi`` declares the same names for static tools, and a test
+keeps the two in step.
 """
 
 from importlib import import_module
@@ -9,34 +12,39 @@ from importlib import import_module
 from ._version import __version__
 from .errors import GeosrError
 
-#: Public name -> module that defines it.
-_LAZY = {
-    "CoupledDictionary": "geosr.model",
-    "default_model": "geosr.model",
-    "load_models": "geosr.model",
-    "save_models": "geosr.model",
-    "degrade": "geosr.resample",
-    "upscale_bicubic": "geosr.resample",
-    "magnify_raster": "geosr.workflow",
-    "train_from_rasters": "geosr.workflow",
-    "magnify_array": "geosr.workflow",
-    "assess_raster": "geosr.assess",
+#: Public name -> the module that defines it.
+_ATTRIBUTES = {
+    "CoupledDictionary": "geosr.core.model",
+    "degrade": "geosr.core.resample",
+    "upscale_bicubic": "geosr.core.resample",
+    "default_model": "geosr.modelfile",
+    "load_models": "geosr.modelfile",
+    "save_models": "geosr.modelfile",
+    "magnify_raster": "geosr.pipeline.magnify",
+    "magnify_array": "geosr.pipeline.magnify",
+    "train_from_rasters": "geosr.pipeline.magnify",
+    "assess_raster": "geosr.assess.protocol",
 }
-_SUBMODULES = {"errors", "metrics", "sparse", "model", "resample", "patches", "workflow", "assess"}
+#: Public submodule name -> the module it is.
+_SUBMODULES = {
+    "errors": "geosr.errors",
+    "metrics": "geosr.core.metrics",
+    "sparse": "geosr.core.sparse",
+}
 
-__all__ = ["__version__", "GeosrError", *_LAZY, "errors", "metrics", "sparse"]
+__all__ = ["__version__", "GeosrError", *_ATTRIBUTES, *_SUBMODULES]
 
 
-def __getattr__(name):
-    if name in _LAZY:
-        value = getattr(import_module(_LAZY[name]), name)
+def __getattr__(name: str) -> object:
+    if name in _ATTRIBUTES:
+        value = getattr(import_module(_ATTRIBUTES[name]), name)
     elif name in _SUBMODULES:
-        value = import_module(f"geosr.{name}")
+        value = import_module(_SUBMODULES[name])
     else:
         raise AttributeError(f"module 'geosr' has no attribute {name!r}")
     globals()[name] = value
     return value
 
 
-def __dir__():
+def __dir__() -> list[str]:
     return sorted(set(globals()) | set(__all__))

@@ -14,6 +14,7 @@ __all__ = [
     "NotFittedError",
     "DestinationError",
     "RunError",
+    "GeoreferencingWarning",
 ]
 
 
@@ -47,3 +48,7 @@ class DestinationError(GeosrError):
 
 class RunError(GeosrError, RuntimeError):
     """A run failed after it started (a task failed for good, an interruption)."""
+
+
+class GeoreferencingWarning(UserWarning):
+    """The source lacks part of its georeferencing (no CRS, RPCs not carried)."""

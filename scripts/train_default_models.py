@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 from skimage import color, data
 
-from geosr.model import CoupledDictionary
+from geosr.core.model import CoupledDictionary
 
 #: scikit-image bundled photos used for training (name -> loader).
 TRAINING_PHOTOS = [

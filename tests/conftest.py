@@ -107,7 +107,7 @@ def make_raster(tmp_path):
 
 
 def _fit_tiny(scale, method):
-    from geosr.model import CoupledDictionary
+    from geosr.core.model import CoupledDictionary
 
     model = CoupledDictionary(scale=scale, method=method, n_atoms=32, n_iter=1,
                               max_samples=3000, neighbours=128, random_state=0)
@@ -120,22 +120,22 @@ def _fit_tiny(scale, method):
 @pytest.fixture(scope="session")
 def tiny_model():
     """A tiny anchored model at x2, fitted on crops of the camera photo."""
-    pytest.importorskip("geosr.model")
+    pytest.importorskip("geosr.core.model")
     return _fit_tiny(2, "anchored")
 
 
 @pytest.fixture(scope="session")
 def tiny_sparse_x3():
     """A tiny sparse-coding model at x3, fitted on crops of the camera photo."""
-    pytest.importorskip("geosr.model")
+    pytest.importorskip("geosr.core.model")
     return _fit_tiny(3, "sparse")
 
 
 class BicubicContractModel:
     """Follows the core's model contract with plain bicubic interpolation.
 
-    Built only from ``geosr.resample`` (``upscale_valid``) and
-    ``geosr.nodata.fill_invalid`` when present, so that the raster pipeline
+    Built only from ``geosr.core.resample`` (``upscale_valid``) and
+    ``geosr.core.nodata.fill_invalid`` when present, so that the raster pipeline
     can be checked against GDAL's cubic resampling: the output is what a
     pure interpolator gives, with no synthesized detail.
     """
@@ -164,7 +164,7 @@ class BicubicContractModel:
         return out
 
     def magnify_block(self, block, halo, valid=None, *, consistency=False, ensemble=False):
-        from geosr.resample import upscale_valid
+        from geosr.core.resample import upscale_valid
 
         x = np.asarray(block, dtype=np.float32 if block.dtype == np.float32 else np.float64)
         v = np.isfinite(x) if valid is None else (np.asarray(valid, bool) & np.isfinite(x))

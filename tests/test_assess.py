@@ -1,4 +1,4 @@
-"""Tests of geosr.assess: Wald's protocol, baselines, report folder."""
+"""Tests of geosr.assess.protocol: Wald's protocol, baselines, report folder."""
 
 from __future__ import annotations
 
@@ -14,10 +14,11 @@ from rasterio.enums import Resampling
 from rasterio.io import MemoryFile
 
 from geosr import metrics
-from geosr.assess import METHODS, HIGHER_IS_BETTER, assess_raster, low_res_valid
+from geosr.assess.protocol import METHODS, HIGHER_IS_BETTER, assess_raster, low_res_valid
 from geosr.errors import DestinationError, ModelError
-from geosr.model import CoupledDictionary, default_model_path
-from geosr.resample import degrade
+from geosr.core.model import CoupledDictionary
+from geosr.modelfile import default_model_path
+from geosr.core.resample import degrade
 
 DATA = Path(__file__).resolve().parents[1] / ".." / "shared" / "data"
 LANDSAT = DATA / "RGB.byte.tif"
@@ -82,7 +83,7 @@ def _check_sam(result):
 
 
 def test_low_res_valid_matches_nan_spreading():
-    # A NaN spreads through geosr.resample.degrade to exactly the low-res cells
+    # A NaN spreads through geosr.core.resample.degrade to exactly the low-res cells
     # whose support reads it (every tap weight is non-zero), an independent
     # statement of the rule "invalid if any pixel under the support is invalid".
     rng = np.random.default_rng(0)
@@ -108,7 +109,7 @@ def test_area_low_res_valid_is_block_rule():
 
 def test_bicubic_baseline_equals_direct_metrics(astronaut_tif, astronaut_x2):
     # Identical-method sanity: GDAL cubic resampling through rasterio, scored
-    # directly with geosr.metrics, gives the bicubic entry of the report.
+    # directly with geosr.core.metrics, gives the bicubic entry of the report.
     _, result = astronaut_x2
     with rasterio.open(astronaut_tif) as ds:
         ref = ds.read().astype(np.float64)

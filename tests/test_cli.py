@@ -14,7 +14,7 @@ import rasterio
 from affine import Affine
 from click.testing import CliRunner
 
-import geosr.workflow
+import geosr.pipeline.magnify
 from geosr._version import __version__
 from geosr.cli import options
 from geosr.cli.main import geosr as cli
@@ -86,7 +86,7 @@ def test_help_lists_the_commands_and_the_cli_imports_no_more_library():
         "import geosr.cli.main\n"
         "added = set(sys.modules) - before\n"
         "heavy = ('numpy', 'scipy', 'rasterio', 'numba', 'dask', 'matplotlib', 'sklearn', "
-        "'geosr.workflow', 'geosr.model', 'geosr.demo')\n"
+        "'geosr.pipeline.magnify', 'geosr.core.model', 'geosr.demo.scene')\n"
         "print(','.join(sorted(m for m in added if m.split('.')[0] in heavy or m in heavy)))"
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
@@ -180,8 +180,8 @@ def test_other_usage_errors(tmp_path, args, needles):
 
 def test_cli_limits_match_the_library():
     from geosr.raster.windows import MIN_CHUNK
-    from geosr.resample import check_scale
-    from geosr.schedule import resolve_scheduler
+    from geosr.core.resample import check_scale
+    from geosr.parallel.schedule import resolve_scheduler
 
     for scale in (options.SCALE_MIN, options.SCALE_MAX):
         assert check_scale(scale) == scale
@@ -217,7 +217,7 @@ def test_geosr_errors_become_one_line_with_their_exit_code(monkeypatch, tmp_path
     def fail(*args, **kwargs):
         raise exc
 
-    monkeypatch.setattr(geosr.workflow, "magnify_raster", fail)
+    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", fail)
     result = run("magnify", tmp_path / "a.tif", tmp_path / "b.tif", "-s", "2")
     line = assert_one_line_error(result, code)
     assert line == "geosr: error: " + " ".join(str(exc).split())
@@ -227,7 +227,7 @@ def test_unexpected_error_is_one_line_and_debug_shows_it(monkeypatch, tmp_path):
     def fail(*args, **kwargs):
         return 1 / 0
 
-    monkeypatch.setattr(geosr.workflow, "magnify_raster", fail)
+    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", fail)
     result = run("magnify", tmp_path / "a.tif", tmp_path / "b.tif", "-s", "2")
     assert_one_line_error(result, 1, "ZeroDivisionError", "--debug")
     result = run("--debug", "magnify", tmp_path / "a.tif", tmp_path / "b.tif", "-s", "2")
@@ -241,7 +241,7 @@ def test_debug_reraises_geosr_errors_too(monkeypatch, tmp_path):
     def fail(*args, **kwargs):
         raise InputError("The source raster must be readable, got garbage")
 
-    monkeypatch.setattr(geosr.workflow, "magnify_raster", fail)
+    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", fail)
     result = run("--debug", "magnify", tmp_path / "a.tif", tmp_path / "b.tif", "-s", "2")
     assert isinstance(result.exception, InputError)
 
@@ -250,7 +250,7 @@ def test_keyboard_interrupt_exits_130(monkeypatch, tmp_path):
     def interrupt(*args, **kwargs):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(geosr.workflow, "magnify_raster", interrupt)
+    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", interrupt)
     result = run("magnify", tmp_path / "a.tif", tmp_path / "b.tif", "-s", "2")
     assert_one_line_error(result, 130, "interrupted")
 
@@ -261,7 +261,7 @@ def test_sigterm_exits_143(monkeypatch, tmp_path):
     def terminate(*args, **kwargs):
         raise Terminated("terminated by SIGTERM")
 
-    monkeypatch.setattr(geosr.workflow, "magnify_raster", terminate)
+    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", terminate)
     result = run("magnify", tmp_path / "a.tif", tmp_path / "b.tif", "-s", "2")
     assert_one_line_error(result, 143, "terminated")
 
@@ -272,22 +272,22 @@ def test_library_warnings_are_one_line(monkeypatch, tmp_path):
     def warn(*args, **kwargs):
         warnings.warn("The source has no CRS;\n the output will have none", UserWarning)
 
-    monkeypatch.setattr(geosr.workflow, "magnify_raster", warn)
+    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", warn)
     result = run("magnify", tmp_path / "a.tif", tmp_path / "b.tif", "-s", "2")
     assert result.exit_code == 0
     assert "geosr: warning: The source has no CRS; the output will have none" in result.stderr
 
 
 def test_missing_library_function_is_a_clear_error(monkeypatch, tmp_path):
-    monkeypatch.delattr(geosr.workflow, "magnify_raster")
+    monkeypatch.delattr(geosr.pipeline.magnify, "magnify_raster")
     result = run("magnify", tmp_path / "a.tif", tmp_path / "b.tif", "-s", "2")
-    assert_one_line_error(result, 1, "geosr.workflow.magnify_raster is not available")
+    assert_one_line_error(result, 1, "geosr.pipeline.magnify.magnify_raster is not available")
 
 
 def test_assess_without_the_assessment_library_is_clear(monkeypatch, tmp_path):
     import geosr
 
-    assess_module = pytest.importorskip("geosr.assess")
+    assess_module = pytest.importorskip("geosr.assess.protocol")
     monkeypatch.delattr(assess_module, "assess_raster")
     monkeypatch.delattr(geosr, "assess_raster", raising=False)
     result = run("assess", tmp_path / "r.tif", "-s", "2", "-o", tmp_path / "report")
@@ -295,7 +295,7 @@ def test_assess_without_the_assessment_library_is_clear(monkeypatch, tmp_path):
 
 
 def test_assess_writes_the_report(make_raster, tmp_path, model_file):
-    pytest.importorskip("geosr.assess")
+    pytest.importorskip("geosr.assess.protocol")
     ref = make_raster(camera(64, 64).astype(np.uint8), name="ref.tif")
     result = run("assess", ref, "-s", "2", "-o", tmp_path / "report", "--model", model_file)
     assert result.exit_code == 0, result.stderr
@@ -311,7 +311,7 @@ def test_assess_writes_the_report(make_raster, tmp_path, model_file):
 
 
 def test_assess_wiring(recorder):
-    assess_module = pytest.importorskip("geosr.assess")
+    assess_module = pytest.importorskip("geosr.assess.protocol")
     calls = recorder(assess_module, "assess_raster")
     result = run("assess", "ref.tif", "-s", "3", "-o", "rep", "--self-train", "--atoms", "64",
                  "--degradation", "gaussian", "--sigma", "1.2", "--bands", "1-2", "--crop", "64",
@@ -331,7 +331,7 @@ def test_assess_wiring(recorder):
 
 # ------------------------------------------------------------- wiring
 def test_magnify_passes_every_option(recorder, tmp_path, model_file):
-    calls = recorder(geosr.workflow, "magnify_raster")
+    calls = recorder(geosr.pipeline.magnify, "magnify_raster")
     result = run(
         "magnify", "in.tif", "out.tif", "--model", model_file, "--method", "ANCHORED",
         "--bands", "1,3-4", "--chunk", "300", "--workers", "3", "--co", "compress=zstd",
@@ -350,7 +350,7 @@ def test_magnify_passes_every_option(recorder, tmp_path, model_file):
 
 
 def test_magnify_defaults(recorder):
-    calls = recorder(geosr.workflow, "magnify_raster")
+    calls = recorder(geosr.pipeline.magnify, "magnify_raster")
     result = run("magnify", "in.tif", "out.tif", "-s", "3")
     assert result.exit_code == 0, result.stderr
     (args, kw), = calls
@@ -360,7 +360,7 @@ def test_magnify_defaults(recorder):
 
 
 def test_self_train_options_go_to_training(recorder):
-    calls = recorder(geosr.workflow, "magnify_raster")
+    calls = recorder(geosr.pipeline.magnify, "magnify_raster")
     result = run("magnify", "in.tif", "out.tif", "-s", "2", "--self-train", "--atoms", "64",
                  "--samples", "5000", "--degradation", "gaussian")
     assert result.exit_code == 0, result.stderr
@@ -370,7 +370,7 @@ def test_self_train_options_go_to_training(recorder):
 
 
 def test_local_scheduler_names_combine_with_workers(recorder):
-    calls = recorder(geosr.workflow, "magnify_raster")
+    calls = recorder(geosr.pipeline.magnify, "magnify_raster")
     result = run("magnify", "in.tif", "out.tif", "-s", "2", "--scheduler", "processes",
                  "--workers", "2")
     assert result.exit_code == 0, result.stderr
@@ -383,7 +383,7 @@ def test_unsupported_keyword_is_refused_only_when_set(monkeypatch):
     def older(src, dst, model=None, *, scale=None, quiet=False):
         seen.append((scale, quiet))
 
-    monkeypatch.setattr(geosr.workflow, "magnify_raster", older)
+    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", older)
     result = run("magnify", "in.tif", "out.tif", "-s", "2")
     assert result.exit_code == 0 and seen == [(2, False)]
     result = run("magnify", "in.tif", "out.tif", "-s", "2", "--ensemble")
@@ -393,7 +393,7 @@ def test_unsupported_keyword_is_refused_only_when_set(monkeypatch):
 
 
 def test_train_passes_model_parameters(recorder, tmp_path):
-    calls = recorder(geosr.workflow, "train_from_rasters")
+    calls = recorder(geosr.pipeline.magnify, "train_from_rasters")
     os.chdir(tmp_path)
     result = run("train", "a.tif", "b.tif", "-o", "m.npz", "-s", "4", "--shared", "--method",
                  "sparse", "--degradation", "gaussian", "--sigma", "1.5", "--atoms", "128",
@@ -411,7 +411,7 @@ def test_train_passes_model_parameters(recorder, tmp_path):
 
 
 def test_train_refuses_an_existing_model_without_overwrite(recorder, tmp_path):
-    calls = recorder(geosr.workflow, "train_from_rasters")
+    calls = recorder(geosr.pipeline.magnify, "train_from_rasters")
     (tmp_path / "m.npz").write_bytes(b"old")
     os.chdir(tmp_path)
     assert_one_line_error(run("train", "a.tif", "-o", "m.npz", "-s", "2"), 1, "m.npz", "--overwrite")
@@ -426,7 +426,7 @@ def test_train_magnify_describe_end_to_end(make_raster, tmp_path):
                  "--iterations", "1", "--neighbours", "64", "--samples", "1500", "--chunk", "64")
     assert result.exit_code == 0, result.stderr
     assert f"wrote {model}" in result.stderr and "1 model, one per band" in result.stderr
-    from geosr.model import load_models
+    from geosr.modelfile import load_models
 
     (m,) = load_models(model)
     assert m.scale == 2 and m.method == "anchored" and m.n_atoms == 16
@@ -471,7 +471,7 @@ def test_magnify_missing_source_exits_1(tmp_path, model_file):
 
 
 def test_describe_shipped_model_or_clear_error():
-    from geosr.model import default_model_path
+    from geosr.modelfile import default_model_path
 
     result = run("describe", "--scale", "3")
     if default_model_path(3).is_file():

@@ -10,10 +10,10 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-import geosr.workflow
+import geosr.pipeline.magnify
 from geosr.cli import options
 from geosr.cli.main import geosr as cli
-from geosr.config import Key, check_value, load_config, read_toml
+from geosr.cli.config import Key, check_value, load_config, read_toml
 from geosr.errors import ParameterError
 
 if sys.version_info >= (3, 11):
@@ -173,8 +173,8 @@ def calls(monkeypatch):
     def record(*args, **kwargs):
         seen.append(dict(kwargs, model=args[2]))
 
-    record.__signature__ = inspect.signature(geosr.workflow.magnify_raster)
-    monkeypatch.setattr(geosr.workflow, "magnify_raster", record)
+    record.__signature__ = inspect.signature(geosr.pipeline.magnify.magnify_raster)
+    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", record)
     return seen
 
 

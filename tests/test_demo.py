@@ -13,7 +13,7 @@ from affine import Affine
 from click.testing import CliRunner
 from pyproj import CRS
 
-from geosr import demo
+from geosr.demo import scene as demo
 from geosr.cli.main import geosr as cli
 from geosr.errors import ModelError, ParameterError
 
@@ -104,7 +104,7 @@ def test_reflectance_is_plausible(scene):
 
 # -------------------------------------------------------------- the input
 def test_degraded_input_matches_the_library_degradation(small):
-    from geosr.resample import degrade
+    from geosr.core.resample import degrade
 
     coarse = demo.degrade_scene(small, 3)
     assert coarse.data.shape == (4, 64, 64) and coarse.data.dtype == np.uint16
@@ -238,9 +238,9 @@ def test_demo_size_must_be_a_multiple_of_3(tmp_path):
 
 
 def test_demo_without_the_shipped_model_is_one_clear_line(tmp_path, monkeypatch):
-    import geosr.model
+    import geosr.modelfile
 
-    monkeypatch.setattr(geosr.model, "default_model_path", lambda scale: tmp_path / "none.npz")
+    monkeypatch.setattr(geosr.modelfile, "default_model_path", lambda scale: tmp_path / "none.npz")
     with pytest.raises(ModelError, match="needs the model shipped for x3"):
         demo.run_demo(tmp_path / "x")
     assert not (tmp_path / "x").exists()  # nothing is written before the check
@@ -255,10 +255,10 @@ def test_demo_without_the_shipped_model_is_one_clear_line(tmp_path, monkeypatch)
 @pytest.mark.slow
 def test_geosr_demo_end_to_end_with_the_shipped_model(tmp_path):
     """`geosr demo` as a user runs it: a real process, the shipped model, nothing installed."""
-    import geosr.model
+    import geosr.modelfile
 
-    if not hasattr(geosr.model, "default_model"):
-        pytest.skip("geosr.model.default_model does not exist yet (no shipped models)")
+    if not hasattr(geosr.modelfile, "default_model"):
+        pytest.skip("geosr.modelfile.default_model does not exist yet (no shipped models)")
     geosr_exe = Path(sys.executable).parent / "geosr"
     cmd = [str(geosr_exe)] if geosr_exe.exists() else [sys.executable, "-m", "geosr.cli.main"]
     proc = subprocess.run(cmd + ["demo", str(tmp_path / "demo")], capture_output=True, text=True,
@@ -272,7 +272,7 @@ def test_geosr_demo_end_to_end_with_the_shipped_model(tmp_path):
                      [tmp_path / "demo" / n for n in names]))
     truth, out, valid = check_demo_files(paths, 768)
     # the magnified detail is closer to the truth than bicubic interpolation of the input
-    from geosr.resample import upscale_bicubic
+    from geosr.core.resample import upscale_bicubic
 
     with rasterio.open(paths["input"]) as i:
         low = i.read().astype(np.float64)

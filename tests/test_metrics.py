@@ -9,7 +9,7 @@ from skimage import data
 from skimage.metrics import peak_signal_noise_ratio, structural_similarity
 
 from geosr.errors import InputError, ParameterError
-from geosr.metrics import (
+from geosr.core.metrics import (
     consistency_error,
     ergas,
     psnr,
@@ -18,7 +18,7 @@ from geosr.metrics import (
     sam_map,
     ssim,
 )
-from geosr.resample import degrade
+from geosr.core.resample import degrade
 
 
 def _sk_ssim(x, y, data_range, **kw):

@@ -8,8 +8,9 @@ import pytest
 from skimage import color, data
 
 from geosr.errors import InputError, ModelError, NotFittedError, ParameterError
-from geosr.model import CoupledDictionary, load_models, save_models
-from geosr.resample import crop_to_multiple, degrade, upscale_bicubic
+from geosr.core.model import CoupledDictionary
+from geosr.modelfile import load_models, save_models
+from geosr.core.resample import crop_to_multiple, degrade, upscale_bicubic
 
 
 def luminance(rgb):
@@ -298,9 +299,9 @@ def _tiny_tiles(rng, n_tiles, t, s, window=81):
 def test_image_level_fit_is_the_least_squares_solution():
     # Reference: numpy.linalg.lstsq on the explicit matrix of the overlapped objective
     # (fewer than five tiles, so nothing is held out and CG runs to convergence).
-    from geosr.model import _refine_high_dictionary
-    from geosr.patches import overlap_average
-    from geosr.sparse import omp_codes
+    from geosr.core.model import _refine_high_dictionary
+    from geosr.core.features import overlap_average
+    from geosr.core.sparse import omp_codes
 
     rng = np.random.default_rng(3)
     s, t, k = 2, 4, 5
@@ -329,7 +330,7 @@ def test_image_level_fit_is_the_least_squares_solution():
 
 
 def test_image_level_fit_never_worsens_the_held_out_tiles():
-    from geosr.model import _refine_high_dictionary
+    from geosr.core.model import _refine_high_dictionary
 
     rng = np.random.default_rng(5)
     s, t, k = 2, 4, 6
@@ -374,7 +375,7 @@ def reference_anchors(features, dictionary_low):
 
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 def test_anchor_search_matches_argmax_of_correlations(dtype):
-    from geosr.model import _nearest_anchors
+    from geosr.core.model import _nearest_anchors
 
     rng = np.random.default_rng(1)
     atoms = rng.standard_normal((30, 200))

@@ -3,11 +3,11 @@
 import numpy as np
 import pytest
 
-from geosr.patches import canvas_average, overlap_add, overlap_average, overlap_canvas
+from geosr.core.features import canvas_average, overlap_add, overlap_average, overlap_canvas
 
 
 def reference_average(patches, scale):
-    # Plain definition (module docstring of geosr.patches): the patch of centre (ci, cj),
+    # Plain definition (module docstring of geosr.core.features): the patch of centre (ci, cj),
     # counted from -1, covers high-res rows s*(ci-1) .. s*(ci+2)-1; each pixel of the
     # h x w window is the mean of the nine patches covering it.
     s = scale

@@ -20,7 +20,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from geosr.raster.windows import MIN_CHUNK
-from geosr.workflow import magnify_raster
+from geosr.pipeline.magnify import magnify_raster
 
 from conftest import BicubicContractModel
 

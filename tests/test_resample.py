@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from geosr.errors import InputError, ParameterError
-from geosr.resample import (
+from geosr.core.resample import (
     crop_to_multiple,
     default_sigma,
     degradation_margin,

@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 
 from geosr.errors import DestinationError, InputError, ParameterError, RunError
-from geosr.progress import Progress, format_duration
-from geosr.schedule import resolve_scheduler, run_tasks
+from geosr.parallel.progress import Progress, format_duration
+from geosr.parallel.schedule import resolve_scheduler, run_tasks
 
 
 # Task functions live at module level: worker processes import them by name.
@@ -193,7 +193,7 @@ def test_progress_text_and_quiet():
 def test_joining_a_running_scheduler_by_address(monkeypatch):
     from distributed import LocalCluster
 
-    import geosr.schedule
+    import geosr.parallel.schedule
 
     with LocalCluster(n_workers=1, threads_per_worker=2, processes=False, protocol="tcp", host="127.0.0.1",
                       dashboard_address=None) as cluster:
@@ -206,6 +206,6 @@ def test_joining_a_running_scheduler_by_address(monkeypatch):
         assert sorted(got) == [(i, i * i + 2) for i in range(9)]
         # The cluster outlives the run: it was joined, not started.
         assert cluster.scheduler.status.name == "running"
-    monkeypatch.setattr(geosr.schedule, "CONNECT_TIMEOUT", "2s")
+    monkeypatch.setattr(geosr.parallel.schedule, "CONNECT_TIMEOUT", "2s")
     with pytest.raises(RunError, match="reachable"):
         run_tasks(square, [1], {"offset": 0}, got.append, scheduler="tcp://127.0.0.1:9")

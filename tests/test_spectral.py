@@ -1,4 +1,4 @@
-"""Tests of geosr.spectral: the cross-band guard's invariants."""
+"""Tests of geosr.core.spectral: the cross-band guard's invariants."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from geosr.errors import InputError, ParameterError
-from geosr.spectral import DEFAULT_MAX_ANGLE, DEFAULT_MIN_GAIN, guard_spectra
+from geosr.core.spectral import DEFAULT_MAX_ANGLE, DEFAULT_MIN_GAIN, guard_spectra
 
 
 def _angle(a, b):

@@ -22,8 +22,9 @@ from rasterio.transform import from_gcps
 
 from geosr._version import __version__
 from geosr.errors import DestinationError, InputError, ModelError, ParameterError
-from geosr.raster import MIN_CHUNK, GeoreferencingWarning
-from geosr.workflow import magnify_raster, train_from_rasters
+from geosr.errors import GeoreferencingWarning
+from geosr.raster import MIN_CHUNK
+from geosr.pipeline.magnify import magnify_raster, train_from_rasters
 
 from conftest import BicubicContractModel, camera, list_dir, sha256_of
 
@@ -369,7 +370,7 @@ def test_model_of_another_scale_refused(make_raster, run_dir, tiny_model):
 
 
 def test_model_file_path(make_raster, run_dir, tmp_path, tiny_model):
-    from geosr.model import save_models
+    from geosr.modelfile import save_models
 
     src = make_raster(camera(20, 20).astype(np.uint8))
     path = tmp_path / "m.npz"
@@ -536,7 +537,7 @@ def test_bad_parameters(make_raster, run_dir, tiny_model):
 
 
 def test_self_training_on_the_scene(make_raster, run_dir):
-    pytest.importorskip("geosr.model")
+    pytest.importorskip("geosr.core.model")
     src = make_raster(camera(120, 120).astype(np.uint8))
     res = magnify_raster(
         src, run_dir / "self.tif", scale=2, method="anchored", self_train=True, quiet=True,
@@ -549,7 +550,7 @@ def test_self_training_on_the_scene(make_raster, run_dir):
 
 # ----------------------------------------------------------------- training
 def test_train_from_rasters_per_band_and_shared(make_raster, tmp_path):
-    pytest.importorskip("geosr.model")
+    pytest.importorskip("geosr.core.model")
     data = np.stack([camera(130, 140), camera(130, 140, 300, 300)]).astype(np.uint8)
     a = make_raster(data, name="ref_a.tif", descriptions=["red", "nir"])
     b = make_raster(data[:, ::-1].copy(), name="ref_b.tif")
@@ -561,7 +562,7 @@ def test_train_from_rasters_per_band_and_shared(make_raster, tmp_path):
     shared = train_from_rasters([a, b], 2, shared=True, chunk_size=64, output=tmp_path / "s.npz",
                                 **params)
     assert len(shared) == 1
-    from geosr.model import load_models
+    from geosr.modelfile import load_models
 
     assert [m.sha256_ for m in load_models(tmp_path / "s.npz")] == [shared[0].sha256_]
     one = make_raster(data[:1], name="one.tif")
@@ -570,7 +571,7 @@ def test_train_from_rasters_per_band_and_shared(make_raster, tmp_path):
 
 
 def test_train_from_all_nodata_is_clear(shared_file):
-    pytest.importorskip("geosr.model")
+    pytest.importorskip("geosr.core.model")
     src = shared_file("all-nodata.tif")
     with pytest.raises(InputError, match="no usable training patch"):
         train_from_rasters([src], 2, n_atoms=16, n_iter=1, max_samples=500, quiet=True, chunk_size=512)
@@ -623,15 +624,15 @@ def test_local_cluster_equals_threads(make_raster, run_dir, tiny_model):
 @pytest.mark.slow
 @pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
 def test_interrupt_leaves_no_output(make_raster, run_dir, tmp_path, sig):
-    pytest.importorskip("geosr.model")
+    pytest.importorskip("geosr.core.model")
     src = make_raster(camera(400, 400).astype(np.uint8))
     before = sha256_of(src)
     script = tmp_path / "run.py"
     script.write_text(textwrap.dedent(f"""
         import numpy as np, sys, time
         from skimage import data
-        from geosr.model import CoupledDictionary
-        from geosr.workflow import magnify_raster
+        from geosr.core.model import CoupledDictionary
+        from geosr.pipeline.magnify import magnify_raster
         from geosr.raster import writing
         img = data.camera().astype(float)
         m = CoupledDictionary(scale=2, method="anchored", n_atoms=16, n_iter=1,
@@ -679,7 +680,7 @@ def test_damaged_inner_tile_fails_in_its_task_and_leaves_nothing(make_raster, ru
 def test_magnify_array_is_lazy_and_equals_the_written_raster(make_raster, run_dir, tiny_model):
     import dask
 
-    from geosr.workflow import magnify_array
+    from geosr.pipeline.magnify import magnify_array
 
     img = camera(45, 38).astype(np.float32)
     img[10:14, 5:9] = np.nan
@@ -785,7 +786,7 @@ def test_no_residual_tags_without_consistency(make_raster, run_dir, tiny_model):
 
 
 def test_shipped_model_when_none_is_given(make_raster, run_dir):
-    model_mod = pytest.importorskip("geosr.model")
+    import geosr.modelfile as model_mod
     if not model_mod.default_model_path(2).is_file():
         pytest.skip("no shipped model for x2 in this checkout")
     src = make_raster(camera(24, 24).astype(np.uint8))
@@ -811,8 +812,8 @@ def _three_bands(rows, cols):
 
 @pytest.mark.parametrize("dtype,tol", [("float32", 2e-4), ("float64", 1e-9)])
 def test_spectral_guard_chunked_equals_whole(make_raster, run_dir, tiny_model, dtype, tol):
-    from geosr.spectral import guard_spectra
-    from geosr.workflow import magnify_array
+    from geosr.core.spectral import guard_spectra
+    from geosr.pipeline.magnify import magnify_array
 
     rows, cols = 47, 53
     img = _three_bands(rows, cols).astype(dtype)

@@ -14,7 +14,7 @@ def _assess_function():
     """geosr.assess_raster wherever this installation has it."""
     from ..errors import RunError
 
-    for module in ("geosr.assess", "geosr"):
+    for module in ("geosr.assess.protocol", "geosr"):
         try:
             return options.library_function(module, "assess_raster")
         except RunError:

@@ -40,7 +40,7 @@ def model_card(path, models, header=None):
     path : str
         The model file.
     models : list of CoupledDictionary
-        What :func:`geosr.model.load_models` returned for it.
+        What :func:`geosr.modelfile.load_models` returned for it.
     header : dict, optional
         The file's JSON header (format version, writing geosr version).
     """
@@ -168,9 +168,9 @@ def describe(ctx, model, scale, as_json):
             f"got {'both' if model is not None else 'neither'}",
             ctx=ctx,
         )
-    load_models = options.library_function("geosr.model", "load_models")
+    load_models = options.library_function("geosr.modelfile", "load_models")
     if model is None:
-        default_model_path = options.library_function("geosr.model", "default_model_path")
+        default_model_path = options.library_function("geosr.modelfile", "default_model_path")
         path = default_model_path(scale)
         if not path.is_file():
             from ..errors import ModelError

@@ -107,7 +107,7 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
         extra["max_output_bytes"] = max_output_bytes
     if no_space_check:
         extra["check_free_space"] = False
-    magnify_raster = options.library_function("geosr.workflow", "magnify_raster")
+    magnify_raster = options.library_function("geosr.pipeline.magnify", "magnify_raster")
     result = options.call_library(
         magnify_raster,
         src,

@@ -49,7 +49,7 @@ __all__ = [
     "call_library",
 ]
 
-#: The range of scale factors the core accepts (geosr.resample.check_scale).
+#: The range of scale factors the core accepts (geosr.core.resample.check_scale).
 SCALE_MIN, SCALE_MAX = 2, 8
 
 #: The subcommands that may have a table of their own in a config file.
@@ -430,9 +430,9 @@ def config_schema(command):
         ``{key: (param_name, kind, choices)}``, where ``key`` is the long
         option name without dashes (``"self-train"``), ``param_name`` the
         Python name (``"self_train"``), ``kind`` one of the kinds that
-        :func:`geosr.config.check_value` knows, ``choices`` a tuple or None.
+        :func:`geosr.cli.config.check_value` knows, ``choices`` a tuple or None.
     """
-    from ..config import Key
+    from .config import Key
 
     schema = {}
     for param in command.params:
@@ -462,7 +462,7 @@ def config_schema(command):
 def _load_config_callback(ctx, param, value):
     if value is None:
         return None
-    from ..config import load_config
+    from .config import load_config
 
     schema = config_schema(ctx.command)
     values = load_config(value, schema, command=ctx.info_name, sections=COMMANDS)

@@ -118,7 +118,7 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
             f"--sigma only applies to --degradation gaussian, got --degradation {degradation}",
             ctx=ctx,
         )
-    train_from_rasters = options.library_function("geosr.workflow", "train_from_rasters")
+    train_from_rasters = options.library_function("geosr.pipeline.magnify", "train_from_rasters")
     params = {
         "method": method,
         "degradation": degradation,

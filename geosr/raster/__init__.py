@@ -36,7 +36,6 @@ __all__ = [
     "BlockPlan",
     "BlockResult",
     "CAUTION",
-    "GeoreferencingWarning",
     "MIN_CHUNK",
     "MaskMode",
     "SUPPORTED_DTYPES",
@@ -67,6 +66,3 @@ __all__ = [
     "wgs84_footprint",
 ]
 
-
-class GeoreferencingWarning(UserWarning):
-    """The source lacks part of its georeferencing (no CRS, RPCs not carried)."""

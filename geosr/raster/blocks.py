@@ -17,7 +17,7 @@ import rasterio
 from rasterio.errors import NotGeoreferencedWarning, RasterioError
 
 from ..errors import InputError
-from ..spectral import guard_spectra
+from ..core.spectral import guard_spectra
 from .masks import MaskMode, nearest_magnify, to_output_dtype
 from .windows import Block, halo_read, pad_symmetric
 
@@ -67,7 +67,7 @@ class BlockPlan:
         Whether the source has mask bands worth reading.
     consistency, ensemble : bool
     spectral_guard : bool
-        Apply :func:`geosr.spectral.guard_spectra` across the magnified
+        Apply :func:`geosr.core.spectral.guard_spectra` across the magnified
         (not alpha) bands when there are at least two.
     read_retries : int
         Extra attempts (each with a fresh handle) when GDAL fails to read.

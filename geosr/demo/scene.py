@@ -10,7 +10,7 @@ shading, and a nodata wedge in one corner, like the edge of a swath.
 Bands are blue, green, red and near-infrared surface reflectance scaled by
 10,000 (uint16, nodata 0), on a UTM grid (zone 33 north) at invented
 coordinates. :func:`run_demo` writes the 3 m "truth", the 9 m input made from
-it with :func:`geosr.resample.degrade`, the input magnified x3 by the shipped
+it with :func:`geosr.core.resample.degrade`, the input magnified x3 by the shipped
 model, and a PNG that shows the same detail crop by nearest neighbour,
 bicubic, geosr and the truth side by side.
 """
@@ -25,7 +25,7 @@ import time
 import numpy as np
 from scipy import ndimage
 
-from .errors import InputError, ModelError, ParameterError, RunError
+from ..errors import InputError, ModelError, ParameterError, RunError
 
 __all__ = [
     "BANDS",
@@ -502,7 +502,7 @@ def degrade_scene(scene, scale=SCALE):
     """
     from affine import Affine
 
-    from .resample import degrade
+    from ..core.resample import degrade
 
     data = scene.data.astype(np.float64)
     if not scene.valid.all():
@@ -698,17 +698,17 @@ def write_quicklook(path, panels, **kwargs):
 def _check_library(scale, model):
     """Fail early, in one line, when magnification is not available."""
     try:
-        from .workflow import magnify_raster
+        from ..pipeline.magnify import magnify_raster
     except ImportError as exc:
         raise RunError(
-            f"The demo needs geosr.workflow.magnify_raster, which this installation does not have ({exc})"
+            f"The demo needs geosr.pipeline.magnify.magnify_raster, which this installation does not have ({exc})"
         ) from None
     if model is None:
         try:
-            from .model import default_model_path
+            from ..modelfile import default_model_path
         except ImportError:
             raise RunError(
-                "The demo needs geosr.model.default_model_path, which this installation does not have"
+                "The demo needs geosr.modelfile.default_model_path, which this installation does not have"
             ) from None
         path = default_model_path(scale)
         if not path.is_file():
@@ -748,7 +748,7 @@ def run_demo(outdir, *, seed=0, size=SIZE, model=None, quiet=False, echo=None):
         Paths by role: ``"truth"``, ``"input"``, ``"output"``, ``"quicklook"``,
         and ``"seconds"``, the time taken.
     """
-    from .resample import upscale_bicubic
+    from ..core.resample import upscale_bicubic
 
     say = echo or (lambda message: None)
     start = time.perf_counter()

@@ -71,7 +71,7 @@ from numba import types
 from numba.extending import intrinsic
 from threadpoolctl import ThreadpoolController
 
-from .errors import InputError, NotFittedError, ParameterError
+from ..errors import InputError, NotFittedError, ParameterError
 
 __all__ = ["batch_omp", "omp_codes", "reconstruct", "ksvd", "KSVD"]
 
@@ -995,7 +995,7 @@ def ksvd(X, n_atoms, n_nonzero, n_iter, *, init=None, random_state=None, callbac
 class KSVD:
     """A thin estimator over :func:`ksvd` and :func:`batch_omp`.
 
-    Signals are columns, as everywhere in :mod:`geosr.sparse`:
+    Signals are columns, as everywhere in :mod:`geosr.core.sparse`:
     ``fit(X)`` takes ``X`` of shape (n_features, n_signals) and learns
     ``components_`` of shape (n_features, n_atoms) (the dictionary ``D``).
 

@@ -25,13 +25,13 @@ import warnings
 
 import numpy as np
 
-from . import metrics as _metrics
-from ._version import __version__
-from .enums import Degradation, Method
-from .errors import DestinationError, InputError, ModelError, ParameterError
-from .nodata import fill_invalid
-from .spectral import guard_spectra
-from .resample import (
+from ..core import metrics as _metrics
+from .._version import __version__
+from ..enums import Degradation, Method
+from ..errors import DestinationError, InputError, ModelError, ParameterError
+from ..core.nodata import fill_invalid
+from ..core.spectral import guard_spectra
+from ..core.resample import (
     check_scale,
     crop_to_multiple,
     default_sigma,
@@ -163,7 +163,7 @@ def _metric_set(ref, est, valid, scale, data_range, low, low_valid, degradation,
         "ergas": m.ergas(ref, est_c, scale, valid=valid, per_band=True),
         "q": m.q_index(ref, est_c, valid=valid, per_band=True),
     }
-    # SSIM and Q pool the bands by their mean (geosr.metrics): no second pass.
+    # SSIM and Q pool the bands by their mean (geosr.core.metrics): no second pass.
     overall["ssim"] = float(per["ssim"].mean())
     overall["q"] = float(per["q"].mean())
     bands = []
@@ -370,7 +370,8 @@ def _publish(tmp, report_dir):
 
 def _resolve_models(model, self_train, scale, method, low, low_valid, degradation, sigma, training):
     """(models, source description); trains when self_train."""
-    from .model import CoupledDictionary, default_model, load_models
+    from ..core.model import CoupledDictionary
+    from ..modelfile import default_model, load_models
 
     if self_train:
         if model is not None:
@@ -435,7 +436,7 @@ def assess_raster(
 
     The reference is read whole (masked and nodata pixels become invalid),
     cropped at the bottom and right to a multiple of ``scale``, degraded band
-    by band with :func:`geosr.resample.degrade` (invalid pixels are filled
+    by band with :func:`geosr.core.resample.degrade` (invalid pixels are filled
     from valid neighbours first so no NaN spreads; a low-res cell is invalid
     when any high-res pixel under its degradation support is invalid), then
     magnified back by geosr, by GDAL's bicubic and Lanczos resampling (a
@@ -466,14 +467,14 @@ def assess_raster(
         Degradation model of the protocol (None means "bicubic").
     sigma : float, optional
         Gaussian width in high-res pixels (``"gaussian"`` only; default
-        :func:`geosr.resample.default_sigma`).
+        :func:`geosr.core.resample.default_sigma`).
     bands : sequence of int or str, optional
         1-based bands to assess; default every non-alpha band.
     consistency, ensemble : bool
         Options of :meth:`CoupledDictionary.magnify`.
     spectral_guard : bool
         With two or more bands, limit how far geosr's per-band detail turns
-        each pixel's spectrum (:func:`geosr.spectral.guard_spectra`), as
+        each pixel's spectrum (:func:`geosr.core.spectral.guard_spectra`), as
         ``geosr magnify`` does by default.
     training : dict, optional
         CoupledDictionary parameters for ``self_train`` (plus ``shared``),
@@ -509,7 +510,7 @@ def assess_raster(
     from affine import Affine
     from rasterio.enums import ColorInterp, Resampling
 
-    from .raster.io import check_bands
+    from ..raster.io import check_bands
 
     s = check_scale(scale)
     deg = Degradation.parse("bicubic" if degradation is None else degradation, "degradation")

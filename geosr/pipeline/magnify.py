@@ -15,12 +15,11 @@ from pathlib import Path
 
 import numpy as np
 
-from .enums import Method
-from .errors import InputError, ModelError, ParameterError
-from .progress import Progress
-from .raster import GeoreferencingWarning
-from .raster.blocks import BlockPlan, ResidualStats, magnify_one_block, spectral_guard_applies
-from .raster.io import (
+from ..enums import Method
+from ..errors import GeoreferencingWarning, InputError, ModelError, ParameterError
+from ..parallel.progress import Progress
+from ..raster.blocks import BlockPlan, ResidualStats, magnify_one_block, spectral_guard_applies
+from ..raster.io import (
     TempFiles,
     check_bands,
     check_destination,
@@ -29,27 +28,27 @@ from .raster.io import (
     remove_stale_temps,
     terminate_as_interrupt,
 )
-from .raster.masks import MaskMode, mask_mode
-from .raster.profiles import (
+from ..raster.masks import MaskMode, mask_mode
+from ..raster.profiles import (
     choose_blocksize,
     cog_options,
     gtiff_options,
     parse_creation_options,
     validate_creation_options,
 )
-from .raster.stac import stac_item, stac_path, write_stac_item
-from .raster.tags import carried_band_tags, carried_tags, provenance_tags, utc_now
-from .raster.training import (
+from ..raster.stac import stac_item, stac_path, write_stac_item
+from ..raster.tags import carried_band_tags, carried_tags, provenance_tags, utc_now
+from ..raster.training import (
     TrainJob,
     TrainPlan,
     collect_window_pairs,
     training_blocks,
     window_quota,
 )
-from .raster.transforms import scaled_transform
-from .raster.windows import Block, block_grid, check_chunk_size
-from .resample import check_scale
-from .schedule import SchedulerSpec, resolve_scheduler, run_tasks
+from ..raster.transforms import scaled_transform
+from ..raster.windows import Block, block_grid, check_chunk_size
+from ..core.resample import check_scale
+from ..parallel.schedule import SchedulerSpec, resolve_scheduler, run_tasks
 
 __all__ = [
     "magnify_raster",
@@ -202,7 +201,7 @@ def _model_method(model):
 def _load_models(model):
     """A model argument as a list of model objects."""
     if isinstance(model, (str, os.PathLike)):
-        from .model import load_models
+        from ..modelfile import load_models
 
         return list(load_models(model))
     if _is_model(model):
@@ -316,7 +315,7 @@ def magnify_raster(
         Options of the model's reconstruction.
     spectral_guard : bool
         With two or more magnified bands, limit how far the per-band detail
-        turns each pixel's spectrum (:func:`geosr.spectral.guard_spectra`).
+        turns each pixel's spectrum (:func:`geosr.core.spectral.guard_spectra`).
         Not applied with ``consistency`` (measured pixels take precedence);
         the ``GEOSR_SPECTRAL_GUARD`` tag says whether it was.
     stac : bool
@@ -431,7 +430,7 @@ def magnify_raster(
                 quiet=quiet, **options,
             )
         else:
-            from .model import default_model
+            from ..modelfile import default_model
 
             models = [default_model(scale)]
         _check_models(models, scale, method, len(model_bands), model_bands)
@@ -499,7 +498,7 @@ def magnify_raster(
         else:
             bt["GEOSR_RESAMPLING"] = "nearest"
         band_tags.append(bt)
-    from .raster.writing import OutputRaster, copy_to_cog, output_profile
+    from ..raster.writing import OutputRaster, copy_to_cog, output_profile
 
     profile = output_profile(info, band_sel, dtype, scale, nodata, gt_opts)
     jobs = [_MagnifyJob(plan, b) for b in blocks]
@@ -630,7 +629,7 @@ def train_from_rasters(
     quiet : bool
         No progress bar.
     output : str or os.PathLike, optional
-        Also save the models there (``geosr.model.save_models``).
+        Also save the models there (``geosr.modelfile.save_models``).
     **model_params
         Further ``CoupledDictionary`` parameters (``n_atoms``, ``n_iter``,
         ``sparsity``, ``degradation``, ...).
@@ -641,7 +640,8 @@ def train_from_rasters(
         One per band in band order, or one shared model. Each has a
         ``band_name_`` attribute.
     """
-    from .model import CoupledDictionary, save_models
+    from ..core.model import CoupledDictionary
+    from ..modelfile import save_models
 
     scale = check_scale(scale)
     shared = _check_bool(shared, "shared")
@@ -754,7 +754,7 @@ def train_from_rasters(
 
 def _array_block(plan, block, models):
     """A block as float values with NaN where the output is invalid."""
-    from .raster.blocks import magnify_block_values
+    from ..raster.blocks import magnify_block_values
 
     return magnify_block_values(plan, block, models)
 
@@ -807,7 +807,7 @@ def magnify_array(src, model=None, *, scale=None, bands=None, chunk_size=1024,
     if model is None:
         if scale is None:
             raise ParameterError("The 'scale' parameter must be given when no model is, got None")
-        from .model import default_model
+        from ..modelfile import default_model
 
         models = [default_model(scale)]
     else:

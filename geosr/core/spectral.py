@@ -25,7 +25,7 @@ import math
 
 import numpy as np
 
-from .errors import InputError, ParameterError
+from ..errors import InputError, ParameterError
 
 __all__ = ["guard_spectra", "DEFAULT_MAX_ANGLE", "DEFAULT_MIN_GAIN"]
 

@@ -18,8 +18,8 @@ from functools import lru_cache
 
 import numpy as np
 
-from .enums import Degradation
-from .errors import InputError, ParameterError
+from ..enums import Degradation
+from ..errors import InputError, ParameterError
 
 __all__ = [
     "keys_kernel",

@@ -31,7 +31,7 @@ import math
 import sys
 from typing import NamedTuple
 
-from .errors import ParameterError
+from ..errors import ParameterError
 
 if sys.version_info >= (3, 11):
     import tomllib

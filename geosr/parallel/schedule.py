@@ -45,7 +45,7 @@ import warnings
 
 from threadpoolctl import threadpool_limits
 
-from .errors import GeosrError, ParameterError, RunError
+from ..errors import GeosrError, ParameterError, RunError
 
 __all__ = ["SchedulerSpec", "resolve_scheduler", "run_tasks", "default_workers"]
 
@@ -175,7 +175,7 @@ def _process_context(func):
         ctx = multiprocessing.get_context("forkserver")
     except ValueError:
         return multiprocessing.get_context("spawn")
-    preload = ["geosr.workflow", "geosr.model"]
+    preload = ["geosr.pipeline.magnify", "geosr.core.model"]
     module = getattr(func, "__module__", None)
     if module and module != "__main__" and module not in preload:
         preload.append(module)
@@ -407,7 +407,7 @@ def run_tasks(func, jobs, shared, consume, *, scheduler=None, workers=None, retr
         See :func:`resolve_scheduler`.
     retries : int
         Extra attempts for a failing task.
-    progress : geosr.progress.Progress, optional
+    progress : geosr.parallel.progress.Progress, optional
         Updated once per finished task.
     label : str
         Names the tasks (``geosr-<label>-...`` keys on a cluster).

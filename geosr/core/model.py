@@ -36,11 +36,11 @@ import scipy.sparse
 from sklearn.base import BaseEstimator
 from threadpoolctl import threadpool_limits
 
-from . import _version
-from .enums import Degradation, Method
-from .errors import InputError, ModelError, NotFittedError, ParameterError
+from .. import _version
+from ..enums import Degradation, Method
+from ..errors import InputError, ModelError, NotFittedError, ParameterError
 from .nodata import FILL_DISTANCE, fill_invalid
-from .patches import (
+from .features import (
     FEATURE_RADIUS,
     PATCH_REACH,
     canvas_average,
@@ -66,15 +66,9 @@ from .sparse import ksvd, omp_codes
 __all__ = [
     "CoupledDictionary",
     "PairSample",
-    "save_models",
-    "load_models",
-    "default_model",
-    "default_model_path",
-    "FORMAT_VERSION",
+    "model_sha256",
 ]
 
-#: Version of the model file layout; bumped when the layout changes.
-FORMAT_VERSION = 1
 
 #: Centres processed at once when magnifying; bounds the working memory.
 _STRIP_CENTRES = 1 << 16
@@ -738,7 +732,7 @@ class CoupledDictionary(BaseEstimator):
         if p["high_fit"] == "image":
             self.training_["image_fit_cells"] = int(n_tile_cells)
             self.training_["image_fit_iterations"] = int(kept)
-        self.sha256_ = _model_sha256(self._arrays(), self._header_params())
+        self.sha256_ = model_sha256(self._arrays(), self._header_params())
         return self
 
     @staticmethod
@@ -1105,12 +1099,16 @@ class CoupledDictionary(BaseEstimator):
         return {"params": self._header_params(), "training": self.training_, "sha256": self.sha256_}
 
     def save(self, path):
-        """Write the model to an ``.npz`` file (see :func:`save_models`)."""
+        """Write the model to an ``.npz`` file (see :func:`geosr.modelfile.save_models`)."""
+        from ..modelfile import save_models
+
         save_models(path, [self])
 
     @classmethod
     def load(cls, path):
-        """Read a model file holding one model (see :func:`load_models`)."""
+        """Read a model file holding one model (see :func:`geosr.modelfile.load_models`)."""
+        from ..modelfile import load_models
+
         models = load_models(path)
         if len(models) != 1:
             raise ModelError(
@@ -1231,14 +1229,8 @@ def _refine_high_dictionary(high, dictionary, kernel, tiles, sparsity, scale,
     return best.astype(np.float32), kept
 
 
-# --------------------------------------------------------------- model files
-_ARRAY_NAMES = {
-    "sparse": ("feature_kernel", "pca_eigenvalues", "dictionary_low", "dictionary_high"),
-    "anchored": ("feature_kernel", "pca_eigenvalues", "dictionary_low", "projections"),
-}
-
-
-def _model_sha256(arrays, params):
+# ------------------------------------------------------------- checksum
+def model_sha256(arrays, params):
     """Checksum of a model's arrays and parameters (hand edits are detected)."""
     digest = hashlib.sha256()
     digest.update(json.dumps(params, sort_keys=True).encode())
@@ -1249,190 +1241,3 @@ def _model_sha256(arrays, params):
         digest.update(str(a.shape).encode())
         digest.update(a.tobytes())
     return digest.hexdigest()
-
-
-def save_models(path, models, band_names=None):
-    """Write one shared model or one model per band to an ``.npz`` file.
-
-    The file holds the learned arrays and a JSON header with the format
-    version, the geosr version, every parameter, the training provenance and
-    a sha256 of each model's arrays. It is written to a temporary file and
-    renamed into place.
-
-    Parameters
-    ----------
-    path : str or os.PathLike
-    models : sequence of CoupledDictionary
-        All fitted, all at one scale.
-    band_names : sequence of str, optional
-        One name per model, kept in the header.
-    """
-    models = list(models)
-    if not models:
-        raise ParameterError("The 'models' parameter must hold at least one model, got none")
-    scales = {m._scale for m in models}
-    if len(scales) != 1:
-        raise ParameterError(f"The models must share one scale, got scales {sorted(scales)}")
-    if band_names is not None and len(band_names) != len(models):
-        raise ParameterError(
-            f"The 'band_names' parameter must name each of the {len(models)} models, "
-            f"got {len(band_names)} names"
-        )
-    arrays = {}
-    entries = []
-    for n, model in enumerate(models):
-        for name, value in model._arrays().items():
-            arrays[f"m{n}_{name}"] = value
-        entry = model._header()
-        entry["band_name"] = None if band_names is None else str(band_names[n])
-        entries.append(entry)
-    header = {
-        "format": "geosr-model",
-        "format_version": FORMAT_VERSION,
-        "geosr_version": _version.__version__,
-        "scale": scales.pop(),
-        "models": entries,
-    }
-    arrays["header"] = np.array(json.dumps(header, sort_keys=True))
-    path = os.fspath(path)
-    folder = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(prefix=".geosr-model-", suffix=".npz", dir=folder)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            np.savez_compressed(fh, **arrays)
-        # mkstemp makes the file private; give it the permissions of a normal file.
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            os.unlink(tmp)
-        raise
-
-
-def load_models(path):
-    """Read a model file written by :func:`save_models`.
-
-    Never unpickles; checks the format version, the shapes, finiteness and
-    the sha256 of every model, and warns when the file was written by
-    another geosr version.
-
-    Returns
-    -------
-    list of CoupledDictionary
-        One shared model, or one per band.
-    """
-    path = os.fspath(path)
-    where = f"The model file {path!r}"
-    if not os.path.exists(path):
-        raise ModelError(f"{where} must exist, got no such file")
-    if os.path.isdir(path):
-        raise ModelError(f"{where} must be a file, got a directory")
-    try:
-        with np.load(path, allow_pickle=False) as npz:
-            arrays = {k: npz[k] for k in npz.files}
-    except Exception as exc:  # zip, npy or pickle errors all mean a damaged file
-        raise ModelError(f"{where} must be a geosr .npz model, got an unreadable file ({exc})") from None
-    try:
-        header = json.loads(str(arrays.pop("header")))
-    except Exception:
-        raise ModelError(f"{where} must carry a geosr JSON header, got none or a damaged one") from None
-    if not isinstance(header, dict) or header.get("format") != "geosr-model":
-        raise ModelError(f"{where} must be a geosr model, got another kind of file")
-    version = header.get("format_version")
-    if not isinstance(version, int) or version > FORMAT_VERSION or version < 1:
-        raise ModelError(
-            f"{where} must have format version 1 to {FORMAT_VERSION}, got {version!r}; "
-            "it was written by a newer geosr"
-        )
-    if header.get("geosr_version") != _version.__version__:
-        warnings.warn(
-            f"{where} was written by geosr {header.get('geosr_version')}, "
-            f"this is geosr {_version.__version__}",
-            UserWarning,
-            stacklevel=2,
-        )
-    entries = header.get("models")
-    if not isinstance(entries, list) or not entries:
-        raise ModelError(f"{where} must list at least one model, got none")
-    models = []
-    for n, entry in enumerate(entries):
-        try:
-            models.append(_model_from_entry(entry, n, arrays))
-        except ModelError as exc:
-            raise ModelError(f"{where}: {exc}") from None
-        except (ParameterError, KeyError, TypeError, ValueError) as exc:
-            raise ModelError(f"{where} must hold valid model parameters, got {exc}") from None
-    return models
-
-
-def _model_from_entry(entry, n, arrays):
-    params = dict(entry["params"])
-    known = set(CoupledDictionary().get_params())
-    unknown = set(params) - known
-    if unknown:
-        raise ModelError(f"model {n} must have known parameters, got {sorted(unknown)}")
-    model = CoupledDictionary(**params)
-    p = model._validate_params()
-    names = _ARRAY_NAMES[str(p["method"])]
-    got = {}
-    for name in names:
-        key = f"m{n}_{name}"
-        if key not in arrays:
-            raise ModelError(f"model {n} must have the array {name!r}, got none")
-        a = arrays[key]
-        if a.dtype.kind != "f" or not np.isfinite(a).all():
-            raise ModelError(f"model {n} array {name!r} must hold finite floats, got {a.dtype} with non-finite values")
-        got[name] = a.astype(np.float32, copy=False)
-    if _model_sha256(got, model._header_params()) != entry.get("sha256"):
-        raise ModelError(f"model {n} arrays must match the checksum in the header, got different bytes")
-    s = p["scale"]
-    window = (2 * FEATURE_RADIUS + 1) ** 2
-    d = got["feature_kernel"].shape[0] if got["feature_kernel"].ndim == 2 else -1
-    k = got["dictionary_low"].shape[1] if got["dictionary_low"].ndim == 2 else -1
-    expected = {
-        "feature_kernel": (d, window),
-        "pca_eigenvalues": (d,),
-        "dictionary_low": (d, k),
-        "dictionary_high": ((3 * s) ** 2, k),
-        "projections": (k, (3 * s) ** 2, d),
-    }
-    for name in names:
-        if got[name].shape != expected[name] or d < 1 or k < 1:
-            raise ModelError(
-                f"model {n} array {name!r} must have shape {expected[name]}, got {got[name].shape}"
-            )
-    model.feature_kernel_ = got["feature_kernel"]
-    model.pca_eigenvalues_ = got["pca_eigenvalues"]
-    model.dictionary_low_ = got["dictionary_low"]
-    if "dictionary_high" in got:
-        model.dictionary_high_ = got["dictionary_high"]
-    else:
-        model.projections_ = got["projections"]
-    model.training_ = dict(entry.get("training") or {})
-    model.sha256_ = entry["sha256"]
-    model.band_name_ = entry.get("band_name")
-    return model
-
-
-def default_model_path(scale):
-    """Path of the model shipped in the package for a scale factor."""
-    scale = check_scale(scale)
-    return resources.files("geosr") / "models" / f"default-x{scale}.npz"
-
-
-def default_model(scale):
-    """The model shipped in the package for ``scale`` (2, 3 or 4)."""
-    path = default_model_path(scale)
-    if not path.is_file():
-        if check_scale(scale) in (2, 3, 4):
-            raise ModelError(
-                f"The shipped model for x{scale} must be installed with geosr, got no file at "
-                f"{path}; reinstall geosr or pass a model file"
-            )
-        raise ModelError(
-            f"The 'scale' parameter must be one with a shipped model (2, 3 or 4), got {scale}; "
-            "train a model with 'geosr train' for other scales"
-        )
-    return CoupledDictionary.load(str(path))

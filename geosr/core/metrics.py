@@ -41,7 +41,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import ndimage
 
-from .errors import InputError, ParameterError
+from ..errors import InputError, ParameterError
 from .resample import check_scale, degradation_margin, degradation_taps, degrade
 
 __all__ = [
@@ -618,7 +618,7 @@ def consistency_error(
     """How far degrading the magnified output is from the low-res input.
 
     Computes ``d = degrade(output, scale, degradation, sigma) - low_res``
-    with :func:`geosr.resample.degrade` (symmetric borders) and returns its
+    with :func:`geosr.core.resample.degrade` (symmetric borders) and returns its
     RMS and maximum absolute value, pooled over all bands. 0 means that the
     output explains the input exactly under that degradation model.
 
@@ -631,7 +631,7 @@ def consistency_error(
     scale : int
         Integer scale factor, 2 to 8.
     degradation : {"bicubic", "gaussian", "area"}
-        The degradation model, as in :func:`geosr.resample.degrade`.
+        The degradation model, as in :func:`geosr.core.resample.degrade`.
     sigma : float, optional
         Gaussian width in high-res pixels, only for ``"gaussian"``.
     valid : ndarray of bool, shape (rows, cols) or (bands, rows, cols), optional

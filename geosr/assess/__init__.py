@@ -1,0 +1,1 @@
+"""Assessment under Wald's protocol: degrade a reference, magnify it back, compare."""

@@ -1,0 +1,1 @@
+"""The demo scenario: an invented river valley, degraded, magnified and shown side by side."""
