@@ -18,16 +18,7 @@ from affine import Affine
 from rasterio.crs import CRS
 from rasterio.errors import NotGeoreferencedWarning
 
-SHARED_DATA = Path(__file__).resolve().parent.parent.parent / "shared" / "data"
-
-
-def sha256_of(path):
-    """Hex sha256 of a file's bytes."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
+from helpers import SHARED_DATA, TEST_DATA, BicubicContractModel, camera
 
 
 @pytest.fixture
@@ -41,14 +32,6 @@ def shared_file():
         return path
 
     return get
-
-
-def camera(rows, cols, row0=120, col0=80):
-    """A crop of scikit-image's bundled camera photo as float64 (0..255)."""
-    from skimage import data
-
-    img = data.camera().astype(np.float64)
-    return img[row0 : row0 + rows, col0 : col0 + cols]
 
 
 @pytest.fixture
@@ -131,60 +114,6 @@ def tiny_sparse_x3():
     return _fit_tiny(3, "sparse")
 
 
-class BicubicContractModel:
-    """Follows the core's model contract with plain bicubic interpolation.
-
-    Built only from ``geosr.core.resample`` (``upscale_valid``) and
-    ``geosr.core.nodata.fill_invalid`` when present, so that the raster pipeline
-    can be checked against GDAL's cubic resampling: the output is what a
-    pure interpolator gives, with no synthesized detail.
-    """
-
-    method = "bicubic-contract"
-    FILL = 2
-
-    def __init__(self, scale):
-        self.scale = scale
-        self.sha256_ = hashlib.sha256(f"bicubic-x{scale}".encode()).hexdigest()
-
-    def context_radius(self, consistency=False, masked=False):
-        return 2 + (self.FILL if masked else 0)
-
-    def _fill(self, x, valid):
-        out = np.where(valid, x, 0.0)
-        known = valid.copy()
-        for _ in range(self.FILL):
-            w = known.astype(out.dtype)
-            p, q = np.pad(out * w, 1), np.pad(w, 1)
-            total = sum(p[i : i + out.shape[0], j : j + out.shape[1]] for i in range(3) for j in range(3))
-            count = sum(q[i : i + out.shape[0], j : j + out.shape[1]] for i in range(3) for j in range(3))
-            grow = ~known & (count > 0)
-            out = np.where(grow, total / np.where(count > 0, count, 1), out)
-            known |= grow
-        return out
-
-    def magnify_block(self, block, halo, valid=None, *, consistency=False, ensemble=False):
-        from geosr.core.resample import upscale_valid
-
-        x = np.asarray(block, dtype=np.float32 if block.dtype == np.float32 else np.float64)
-        v = np.isfinite(x) if valid is None else (np.asarray(valid, bool) & np.isfinite(x))
-        masked = not v.all()
-        if masked:
-            x = self._fill(x, v).astype(x.dtype)
-        crop = halo - 2
-        x = x[crop : x.shape[0] - crop, crop : x.shape[1] - crop]
-        return upscale_valid(x, self.scale, 2)
-
-    def magnify(self, image, valid=None, *, consistency=False, ensemble=False):
-        image = np.asarray(image)
-        v = np.isfinite(image) if valid is None else np.asarray(valid, bool) & np.isfinite(image)
-        r = self.context_radius(masked=not v.all())
-        out = self.magnify_block(np.pad(image, r, mode="symmetric"), r, np.pad(v, r, mode="symmetric"))
-        hr = np.repeat(np.repeat(v, self.scale, 0), self.scale, 1)
-        out[~hr] = np.nan
-        return out
-
-
 @pytest.fixture
 def bicubic_model():
     """A model object that follows the contract with plain bicubic interpolation (x2)."""
@@ -199,6 +128,3 @@ def run_dir(tmp_path):
     return out
 
 
-def list_dir(path):
-    """Names in a folder, sorted (to check that no temporary is left)."""
-    return sorted(os.listdir(path))

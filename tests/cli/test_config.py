@@ -21,7 +21,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
-CONFIGS = Path(__file__).resolve().parent.parent / "configs"
+CONFIGS = Path(__file__).resolve().parents[2] / "configs"
 
 SCHEMA = {
     "chunk": Key("chunk", "int"),

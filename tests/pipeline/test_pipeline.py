@@ -26,7 +26,7 @@ from geosr.errors import GeoreferencingWarning
 from geosr.raster import MIN_CHUNK
 from geosr.pipeline.magnify import magnify_raster, train_from_rasters
 
-from conftest import BicubicContractModel, camera, list_dir, sha256_of
+from helpers import BicubicContractModel, camera, list_dir, sha256_of
 
 
 def _read(path):

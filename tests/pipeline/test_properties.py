@@ -22,7 +22,7 @@ from hypothesis import strategies as st
 from geosr.raster.windows import MIN_CHUNK
 from geosr.pipeline.magnify import magnify_raster
 
-from conftest import BicubicContractModel
+from helpers import BicubicContractModel
 
 DTYPES = ("uint8", "uint16", "int16", "float32", "float64")
 NODATA = {"uint8": 0, "uint16": 65535, "int16": -9999, "float32": float("nan"), "float64": -1.0e30}

@@ -18,7 +18,7 @@ from geosr.raster.io import (
     temp_path,
 )
 
-from conftest import camera, sha256_of
+from helpers import camera, sha256_of
 
 
 def test_inspect_source_describes_the_landsat_scene(shared_file):

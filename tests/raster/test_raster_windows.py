@@ -7,7 +7,7 @@ from geosr.errors import ParameterError
 from geosr.raster.blocks import read_block
 from geosr.raster.windows import MIN_CHUNK, Block, block_grid, check_chunk_size, halo_read, pad_symmetric
 
-from conftest import camera
+from helpers import camera
 
 
 @pytest.mark.parametrize("shape,chunk", [((50, 37), 16), ((16, 16), 16), ((5, 3), 16), ((100, 64), 33)])

@@ -20,7 +20,7 @@ from geosr.cli import options
 from geosr.cli.main import geosr as cli
 from geosr.errors import DestinationError, InputError, ParameterError, RunError
 
-from conftest import camera
+from helpers import camera
 
 VENV_BIN = Path(sys.executable).parent
 

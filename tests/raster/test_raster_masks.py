@@ -8,7 +8,7 @@ from rasterio.enums import Resampling
 from geosr.raster.io import inspect_source
 from geosr.raster.masks import MaskMode, mask_mode, nearest_magnify, to_output_dtype
 
-from conftest import camera
+from helpers import camera
 
 
 @pytest.mark.parametrize("scale", [2, 3, 4])

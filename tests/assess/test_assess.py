@@ -20,7 +20,7 @@ from geosr.core.model import CoupledDictionary
 from geosr.modelfile import default_model_path
 from geosr.core.resample import degrade
 
-DATA = Path(__file__).resolve().parents[1] / ".." / "shared" / "data"
+DATA = Path(__file__).resolve().parents[2] / ".." / "shared" / "data"
 LANDSAT = DATA / "RGB.byte.tif"
 
 needs_landsat = pytest.mark.skipif(

@@ -39,10 +39,10 @@ from rasterio.control import GroundControlPoint
 
 from geosr.cli.main import geosr as cli
 
-from conftest import camera, sha256_of
+from helpers import camera, sha256_of
 
 GEOSR = Path(sys.executable).parent / "geosr"
-README = Path(__file__).resolve().parent.parent / "README.md"
+README = Path(__file__).resolve().parents[2] / "README.md"
 TEMP_TAG = ".geosr-tmp-"
 
 
