@@ -22,10 +22,10 @@ MAX_CLASS_LINES = 300
 #: What each layer may import from geosr. Lower layers never import higher ones.
 ALLOWED = {
     # modelfile reads and writes .npz model files only (the estimator's save and load).
-    "core": {"core", "modelfile", "errors", "enums", "_validation", "_version"},
-    "raster": {"raster", "core", "errors", "enums", "_validation", "_version"},
-    "parallel": {"parallel", "errors", "_validation", "_version"},
-    "modelfile": {"modelfile", "core", "errors", "enums", "_validation", "_version"},
+    "core": {"core", "modelfile", "errors", "enums", "_validation", "_version", "cautions"},
+    "raster": {"raster", "core", "errors", "enums", "_validation", "_version", "cautions"},
+    "parallel": {"parallel", "errors", "_validation", "_version", "cautions"},
+    "modelfile": {"modelfile", "core", "errors", "enums", "_validation", "_version", "cautions"},
 }
 
 

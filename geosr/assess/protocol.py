@@ -25,6 +25,7 @@ import warnings
 
 import numpy as np
 
+from ..cautions import SCORES_CAUTION
 from ..core import metrics as _metrics
 from .._version import __version__
 from ..enums import Degradation, Method
@@ -56,13 +57,6 @@ HIGHER_IS_BETTER = {
     "consistency_max": False,
 }
 
-CAUTION = (
-    "Magnified detail is synthesized by a statistical model. It is not a measurement: "
-    "do not use it for measuring distances or areas, legal or property boundaries, damage "
-    "or insurance evidence, or safety-critical decisions. These scores describe how well the "
-    "synthesized detail matched one reference under one degradation model; they do not "
-    "certify any other scene."
-)
 
 #: Self-training defaults (small, so that bootstrapping a scene stays quick).
 SELF_TRAIN_DEFAULTS = {
@@ -253,7 +247,7 @@ def _write_markdown(path, result, band_names, figures):
         "Bold marks the better value of each metric: higher PSNR, SSIM and Q; lower ERGAS, "
         "SAM (degrees) and consistency error (RMS and max of degrade(output) - low-res input).",
         "",
-        f"> **Caution.** {CAUTION}",
+        f"> **Caution.** {SCORES_CAUTION}",
         "",
     ]
     lines += _table({m: result[m]["overall"] for m in METHODS}, "Overall")

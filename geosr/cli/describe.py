@@ -45,7 +45,7 @@ def model_card(path, models, header=None):
         The file's JSON header (format version, writing geosr version).
     """
     from .._version import __version__
-    from ..raster.tags import CAUTION
+    from ..cautions import CAUTION
 
     header = header or {}
     entries = []

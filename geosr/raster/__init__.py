@@ -20,7 +20,7 @@ from .io import (
 from .masks import MaskMode, mask_mode, nearest_magnify, to_output_dtype
 from .profiles import parse_creation_options
 from .stac import stac_item, stac_path
-from .tags import CAUTION, provenance_tags
+from .tags import provenance_tags
 from .transforms import (
     crs_summary,
     ground_sample_distance,
@@ -35,7 +35,6 @@ __all__ = [
     "Block",
     "BlockPlan",
     "BlockResult",
-    "CAUTION",
     "MIN_CHUNK",
     "MaskMode",
     "SUPPORTED_DTYPES",

@@ -15,7 +15,7 @@ import os
 from pathlib import Path
 
 from .._version import __version__
-from .tags import CAUTION
+from ..cautions import CAUTION
 from .transforms import crs_summary, ground_sample_distance, wgs84_footprint
 
 __all__ = ["STAC_VERSION", "EXTENSIONS", "stac_item", "write_stac_item", "stac_path"]

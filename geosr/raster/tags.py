@@ -19,9 +19,9 @@ from __future__ import annotations
 import datetime as _dt
 
 from .._version import __version__
+from ..cautions import CAUTION
 
 __all__ = [
-    "CAUTION",
     "utc_now",
     "image_description",
     "provenance_tags",
@@ -29,14 +29,6 @@ __all__ = [
     "carried_band_tags",
 ]
 
-#: The caution of the design contract, in words, for tags, reports and logs.
-CAUTION = (
-    "Magnified detail is synthesized by a statistical model. It is not a measurement: "
-    "do not use it for measuring distances or areas, legal or property boundaries, damage "
-    "or insurance evidence, or safety-critical decisions. Defer to licensed practice "
-    "(surveyors, photogrammetrists) and to the rules of your agency and local codes for "
-    "derived imagery."
-)
 
 
 def utc_now():
