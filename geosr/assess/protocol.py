@@ -29,9 +29,17 @@ from ..cautions import SCORES_CAUTION
 from ..core import metrics as _metrics
 from .._version import __version__
 from ..enums import Degradation, Method
-from ..errors import DestinationError, InputError, ModelError, ParameterError
+from ..errors import DestinationError, InputError, ParameterError
 from ..core.nodata import fill_invalid
 from ..core.spectral import guard_spectra
+from ..pipeline.plan import (
+    ModelChoice,
+    check_models,
+    model_method,
+    model_sha,
+    resolve_models,
+    self_training_params,
+)
 from ..core.resample import (
     check_scale,
     crop_to_multiple,
@@ -55,17 +63,6 @@ HIGHER_IS_BETTER = {
     "q": True,
     "consistency_rms": False,
     "consistency_max": False,
-}
-
-
-#: Self-training defaults (small, so that bootstrapping a scene stays quick).
-SELF_TRAIN_DEFAULTS = {
-    "method": "anchored",
-    "n_atoms": 256,
-    "n_iter": 0,
-    "neighbours": 1024,
-    "max_samples": 30_000,
-    "random_state": 0,
 }
 
 
@@ -362,18 +359,15 @@ def _publish(tmp, report_dir):
 # --------------------------------------------------------------------------
 
 
-def _resolve_models(model, self_train, scale, method, low, low_valid, degradation, sigma, training):
-    """(models, source description); trains when self_train."""
+def _resolve_models(model, self_train, scale, method, low, low_valid, degradation, sigma, training,
+                    bands):
+    """A :class:`~geosr.pipeline.plan.ModelChoice`; trains when self_train."""
     from ..core.model import CoupledDictionary
-    from ..modelfile import default_model, load_models
 
     if self_train:
         if model is not None:
             raise ParameterError("The 'model' parameter must not be given with self_train=True, got a model")
-        params = dict(SELF_TRAIN_DEFAULTS)
-        params.update(training or {})
-        if method is not None:
-            params["method"] = str(Method.parse(method, "method"))
+        params = self_training_params("assess", training, method)
         params.update(scale=scale, degradation=degradation, sigma=sigma)
         shared = bool(params.pop("shared", False))
         if shared:
@@ -382,21 +376,11 @@ def _resolve_models(model, self_train, scale, method, low, low_valid, degradatio
         else:
             models = [CoupledDictionary(**params).fit([low[b]], valid=[low_valid[b]])
                       for b in range(low.shape[0])]
-        return models, "self-trained on the degraded reference"
+        check_models(models, scale, method, bands, "assessed")
+        return ModelChoice(tuple(models), scale, "self-trained on the degraded reference")
     if training is not None:
         raise ParameterError("The 'training' parameter must only be given with self_train=True")
-    if model is None:
-        return [default_model(scale)], f"shipped default model for x{scale}"
-    if isinstance(model, (str, os.PathLike)):
-        return list(load_models(model)), os.path.basename(os.fspath(model))
-    if isinstance(model, (list, tuple)) and model and all(hasattr(m, "magnify") for m in model):
-        return list(model), "per-band models given in memory"
-    if hasattr(model, "magnify") and hasattr(model, "scale"):
-        return [model], "model given in memory"
-    raise ParameterError(
-        "The 'model' parameter must be a model, a list of per-band models or a model file path, "
-        f"got {type(model).__name__}"
-    )
+    return resolve_models(model, scale=scale, method=method, bands=bands, role="assessed")
 
 
 # --------------------------------------------------------------------------
@@ -472,7 +456,7 @@ def assess_raster(
         ``geosr magnify`` does by default.
     training : dict, optional
         CoupledDictionary parameters for ``self_train`` (plus ``shared``),
-        over :data:`SELF_TRAIN_DEFAULTS`.
+        over ``SELF_TRAIN_DEFAULTS['assess']`` (:mod:`geosr.pipeline.plan`).
     crop_size : int
         Side in high-res pixels of the side-by-side crop figure.
     chunk_size, workers, scheduler :
@@ -575,20 +559,11 @@ def assess_raster(
         raise InputError("The reference must keep at least one valid pixel to compare, got none")
 
     # ---- models
-    models, source = _resolve_models(model, self_train, s, method, low, np.broadcast_to(low_valid, low.shape),
-                                     deg_name, sigma_used, training)
-    scales = {int(m.scale) for m in models}
-    if scales != {s}:
-        raise ModelError(f"The model must be for the requested scale {s}, got a model for scale(s) {sorted(scales)}")
-    methods_used = sorted({str(m.method) for m in models})
-    if method is not None and methods_used != [method]:
-        raise ModelError(f"The model must use the requested method {method!r}, got {', '.join(map(repr, methods_used))}")
-    if len(models) not in (1, n_bands):
-        raise ModelError(
-            f"The model must be one shared model or one per assessed band ({n_bands}), "
-            f"got {len(models)} per-band models"
-        )
-    shas = [str(getattr(m, "sha256_", None) or "unknown") for m in models]
+    choice = _resolve_models(model, self_train, s, method, low, np.broadcast_to(low_valid, low.shape),
+                             deg_name, sigma_used, training, sel)
+    models, source = choice.models, choice.source
+    methods_used = sorted({model_method(m) for m in models})
+    shas = [model_sha(m) for m in models]
 
     # ---- magnify back
     say("magnifying with geosr" + (" (self-trained)" if self_train else ""))

@@ -47,7 +47,16 @@ from ..raster.training import (
 )
 from ..raster.transforms import scaled_transform
 from ..raster.windows import Block, block_grid, check_chunk_size
-from ..core.resample import check_scale
+from .._validation import check_bool, check_scale
+from .plan import (
+    SELF_TRAIN_DEFAULTS,
+    check_models,
+    model_method as _model_method,
+    model_sha as _model_sha,
+    plan_blocks,
+    resolve_models,
+    split_bands,
+)
 from ..parallel.schedule import SchedulerSpec, resolve_scheduler, run_tasks
 
 __all__ = [
@@ -185,62 +194,7 @@ def _magnify_task(job, models):
 
 
 def _check_bool(value, name):
-    if not isinstance(value, (bool, np.bool_)):
-        raise ParameterError(f"The {name!r} parameter must be True or False, got {value!r}")
-    return bool(value)
-
-
-def _is_model(obj):
-    return all(hasattr(obj, a) for a in ("magnify_block", "context_radius", "scale"))
-
-
-def _model_method(model):
-    return str(getattr(model, "method", "unknown"))
-
-
-def _load_models(model):
-    """A model argument as a list of model objects."""
-    if isinstance(model, (str, os.PathLike)):
-        from ..modelfile import load_models
-
-        return list(load_models(model))
-    if _is_model(model):
-        return [model]
-    if isinstance(model, (list, tuple)) and model and all(_is_model(m) for m in model):
-        return list(model)
-    raise ParameterError(
-        "The 'model' parameter must be a model, a list of per-band models or a model file "
-        f"path, got {type(model).__name__}"
-    )
-
-
-def _check_models(models, scale, method, n_bands, band_list):
-    scales = {int(m.scale) for m in models}
-    if len(scales) != 1:
-        raise ModelError(f"The models must share one scale, got scales {sorted(scales)}")
-    model_scale = scales.pop()
-    if scale is not None and model_scale != scale:
-        raise ModelError(
-            f"The model must be for the requested scale {scale}, got a model for scale {model_scale}"
-        )
-    if method is not None:
-        methods = {_model_method(m) for m in models}
-        if methods != {str(method)}:
-            raise ModelError(
-                f"The model must use the requested method {str(method)!r}, got "
-                f"{', '.join(sorted(map(repr, methods)))}"
-            )
-    if len(models) not in (1, n_bands):
-        raise ModelError(
-            f"The model must be one shared model or one per magnified band ({n_bands}: bands "
-            f"{', '.join(map(str, band_list))}), got {len(models)} per-band models"
-        )
-    return model_scale
-
-
-def _model_sha(model):
-    sha = getattr(model, "sha256_", None)
-    return str(sha) if sha else "unknown"
+    return check_bool(value, name)
 
 
 def magnify_raster(
@@ -381,25 +335,17 @@ def magnify_raster(
     check_chunk_size(chunk_size)
 
     info = inspect_source(src)
-    band_sel = check_bands(bands, info.count)
-    alpha = tuple(b for b in band_sel if info.is_alpha(b))
-    model_bands = tuple(b for b in band_sel if not info.is_alpha(b))
-    if not model_bands:
-        raise ParameterError(
-            f"The 'bands' parameter must select at least one band that is not alpha, got bands "
-            f"{', '.join(map(str, band_sel))}"
-        )
+    split = split_bands(info, bands)
+    band_sel, model_bands = split.selected, split.magnified
     dtype = str(np.result_type(*[info.dtypes[b - 1] for b in band_sel]))
 
     # Models: a given one fixes the scale before the destination checks.
     models = None
-    if model is not None:
-        models = _load_models(model)
-        scale = _check_models(models, scale, method, len(model_bands), model_bands)
+    if model is not None or not self_train:
+        choice = resolve_models(model, scale=scale, method=method, bands=model_bands)
+        models, scale = list(choice.models), choice.scale
     elif scale is None:
-        raise ParameterError(
-            "The 'scale' parameter must be given when no model is, got None"
-        )
+        raise ParameterError("The 'scale' parameter must be given when no model is, got None")
     dst_path = check_destination(dst, [info.path], overwrite)
     stac_dst = None
     if stac:
@@ -416,49 +362,25 @@ def magnify_raster(
         _check_free_space(dst_path.parent, out_bytes * (2 if cog else 1))
 
     if models is None:
-        if self_train:
-            options = dict(training or {})
-            for key in ("bands", "scheduler", "workers", "quiet"):
-                if key in options:
-                    raise ParameterError(
-                        f"The 'training' parameter must not set {key!r}; it is taken from the run"
-                    )
-            options.setdefault("chunk_size", max(chunk_size, 64))
-            options.setdefault("retries", retries)
-            models = train_from_rasters(
-                [info.path], scale, bands=list(model_bands), method=method, scheduler=spec,
-                quiet=quiet, **options,
-            )
-        else:
-            from ..modelfile import default_model
+        options = dict(training or {})
+        for key in ("bands", "scheduler", "workers", "quiet"):
+            if key in options:
+                raise ParameterError(
+                    f"The 'training' parameter must not set {key!r}; it is taken from the run"
+                )
+        options.setdefault("chunk_size", max(chunk_size, 64))
+        options.setdefault("retries", retries)
+        models = train_from_rasters(
+            [info.path], scale, bands=list(model_bands), method=method, scheduler=spec,
+            quiet=quiet, **options,
+        )
+        check_models(models, scale, method, model_bands)
 
-            models = [default_model(scale)]
-        _check_models(models, scale, method, len(model_bands), model_bands)
-
-    shared = len(models) == 1
-    roles = tuple(-1 if b in alpha else (0 if shared else model_bands.index(b)) for b in band_sel)
-    masked = any(info.may_be_masked(b) for b in model_bands)
-    halo = max(int(m.context_radius(consistency=consistency, masked=masked)) for m in models)
-    chunk = check_chunk_size(chunk_size, halo)
-    mode, nodata = mask_mode(info, band_sel, alpha)
-    plan = BlockPlan(
-        path=info.path,
-        height=info.height,
-        width=info.width,
-        bands=band_sel,
-        roles=roles,
-        halo=halo,
-        scale=scale,
-        dtype=dtype,
-        mode=mode,
-        nodata=nodata,
-        masked=masked or mode is not MaskMode.NONE,
-        consistency=consistency,
-        ensemble=ensemble,
-        spectral_guard=spectral_guard_applies(spectral_guard, models, len(model_bands), consistency),
-        read_retries=retries,
-    )
-    blocks = block_grid(info.height, info.width, chunk)
+    mplan = plan_blocks(info, split, models, scale, dtype=dtype, chunk_size=chunk_size,
+                        consistency=consistency, ensemble=ensemble,
+                        spectral_guard=spectral_guard, retries=retries)
+    plan, blocks, halo, chunk, roles = mplan.block_plan, mplan.blocks, mplan.halo, mplan.chunk, mplan.roles
+    mode, nodata = plan.mode, plan.nodata
 
     gt_opts = gtiff_options({} if cog else user_opts, dtype, choose_blocksize(scale * chunk))
     if user_opts and not cog:
@@ -799,33 +721,13 @@ def magnify_array(src, model=None, *, scale=None, bands=None, chunk_size=1024,
         scale = check_scale(scale)
     check_chunk_size(chunk_size)
     info = inspect_source(src)
-    band_sel = check_bands(bands, info.count)
-    alpha = tuple(b for b in band_sel if info.is_alpha(b))
-    model_bands = tuple(b for b in band_sel if not info.is_alpha(b))
-    if not model_bands:
-        raise ParameterError("The 'bands' parameter must select at least one band that is not alpha")
-    if model is None:
-        if scale is None:
-            raise ParameterError("The 'scale' parameter must be given when no model is, got None")
-        from ..modelfile import default_model
-
-        models = [default_model(scale)]
-    else:
-        models = _load_models(model)
-    scale = _check_models(models, scale, None, len(model_bands), model_bands)
-    shared = len(models) == 1
-    roles = tuple(-1 if b in alpha else (0 if shared else model_bands.index(b)) for b in band_sel)
-    masked = any(info.may_be_masked(b) for b in model_bands)
-    halo = max(int(m.context_radius(consistency=consistency, masked=masked)) for m in models)
-    chunk = check_chunk_size(chunk_size, halo)
-    mode, nodata = mask_mode(info, band_sel, alpha)
-    work = "float32" if all(info.dtypes[b - 1] == "float32" for b in band_sel) else "float64"
-    plan = BlockPlan(
-        path=info.path, height=info.height, width=info.width, bands=band_sel, roles=roles,
-        halo=halo, scale=scale, dtype=work, mode=mode, nodata=nodata,
-        masked=masked or mode is not MaskMode.NONE, consistency=consistency, ensemble=ensemble,
-        spectral_guard=spectral_guard_applies(spectral_guard, models, len(model_bands), consistency),
-    )
+    split = split_bands(info, bands)
+    choice = resolve_models(model, scale=scale, bands=split.magnified)
+    models, scale = list(choice.models), choice.scale
+    work = "float32" if all(info.dtypes[b - 1] == "float32" for b in split.selected) else "float64"
+    mplan = plan_blocks(info, split, models, scale, dtype=work, chunk_size=chunk_size,
+                        consistency=consistency, ensemble=ensemble, spectral_guard=spectral_guard)
+    plan, chunk, band_sel = mplan.block_plan, mplan.chunk, split.selected
     blocks = block_grid(info.height, info.width, chunk)
     name = "geosr-magnify-" + tokenize(info.path, plan, [_model_sha(m) for m in models], chunk)
     models_key = name + "-models"
