@@ -21,8 +21,8 @@ _ATTRIBUTES = {
     "load_models": "geosr.modelfile",
     "save_models": "geosr.modelfile",
     "magnify_raster": "geosr.pipeline.magnify",
-    "magnify_array": "geosr.pipeline.magnify",
-    "train_from_rasters": "geosr.pipeline.magnify",
+    "magnify_array": "geosr.pipeline.array",
+    "train_from_rasters": "geosr.pipeline.train",
     "assess_raster": "geosr.assess.protocol",
 }
 #: Public submodule name -> the module it is.

@@ -11,9 +11,9 @@ from .errors import GeosrError as GeosrError
 from .modelfile import default_model as default_model
 from .modelfile import load_models as load_models
 from .modelfile import save_models as save_models
-from .pipeline.magnify import magnify_array as magnify_array
+from .pipeline.array import magnify_array as magnify_array
 from .pipeline.magnify import magnify_raster as magnify_raster
-from .pipeline.magnify import train_from_rasters as train_from_rasters
+from .pipeline.train import train_from_rasters as train_from_rasters
 
 __all__ = [
     "__version__",

@@ -1,0 +1,257 @@
+"""The assessment report: figures, markdown tables, metrics.json, written atomically.
+
+Figures are drawn on :class:`matplotlib.figure.Figure` objects with their own
+Agg canvas, so no matplotlib backend is selected or changed.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import math
+import os
+import shutil
+import tempfile
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+
+from ..cautions import SCORES_CAUTION
+from ..errors import DestinationError
+
+__all__ = ["HIGHER_IS_BETTER", "METHODS", "prepare_destination", "write_report"]
+
+#: Methods compared, in report order.
+METHODS = ("geosr", "bicubic", "lanczos", "nearest")
+
+#: Metric keys of metrics.json and whether a higher value is better.
+HIGHER_IS_BETTER = {
+    "psnr": True,
+    "ssim": True,
+    "ergas": False,
+    "sam": False,
+    "q": True,
+    "consistency_rms": False,
+    "consistency_max": False,
+}
+
+
+
+def _figure(figsize):
+    """A figure drawn by its own Agg canvas (no pyplot, no backend switch)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=figsize)
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _most_textured(ref, valid, size):
+    """Top-left (row, col) of the size x size window of highest local variance."""
+    from scipy import ndimage
+
+    x = np.where(valid, ref, 0.0).mean(axis=0)
+    mean = ndimage.uniform_filter(x, size, mode="constant")
+    var = ndimage.uniform_filter(x * x, size, mode="constant") - mean * mean
+    ok = ndimage.uniform_filter(valid.astype(np.float64), size, mode="constant") > 1 - 1e-9
+    h = size // 2
+    rows, cols = x.shape
+    score = np.where(ok, var, -np.inf)
+    # keep windows wholly inside the image
+    score[: h, :] = -np.inf
+    score[:, : h] = -np.inf
+    score[rows - (size - h) + 1 :, :] = -np.inf
+    score[:, cols - (size - h) + 1 :] = -np.inf
+    if not np.isfinite(score).any():
+        score = var
+    r, c = np.unravel_index(int(np.argmax(score)), score.shape)
+    return max(0, int(r) - h), max(0, int(c) - h)
+
+
+
+
+def _fmt(value):
+    if value is None:
+        return "-"
+    if math.isinf(value):
+        return "inf"
+    return f"{value:.4f}" if abs(value) < 100 else f"{value:.2f}"
+
+
+def _table(rows_by_method, title):
+    keys = list(HIGHER_IS_BETTER)
+    lines = [f"**{title}**", "", "| method | " + " | ".join(keys) + " |",
+             "|---" * (len(keys) + 1) + "|"]
+    best = {}
+    for k in keys:
+        vals = [rows_by_method[m][k] for m in rows_by_method if rows_by_method[m][k] is not None]
+        if vals:
+            best[k] = max(vals) if HIGHER_IS_BETTER[k] else min(vals)
+    for method, row in rows_by_method.items():
+        cells = []
+        for k in keys:
+            text = _fmt(row[k])
+            if row[k] is not None and k in best and row[k] == best[k]:
+                text = f"**{text}**"
+            cells.append(text)
+        lines.append(f"| {method} | " + " | ".join(cells) + " |")
+    return lines + [""]
+
+
+def _write_markdown(path, result, band_names, figures):
+    p = result["protocol"]
+    lines = [
+        "# geosr assessment under Wald's protocol",
+        "",
+        f"Reference: `{p['reference']}`; bands {', '.join(map(str, p['bands']))}; "
+        f"scale x{p['scale']}; degradation {p['degradation']}"
+        + (f" (sigma {p['sigma']:.4f} high-res pixels)" if p["sigma"] is not None else "")
+        + f"; crop {p['crop']['rows']} x {p['crop']['cols']} pixels; "
+        f"{p['valid_pixels']} valid pixels compared.",
+        "",
+        f"geosr {result['geosr_version']}; model: {result['model']['source']} "
+        f"(method {result['model']['method']}, sha256 {result['model_sha256']}); spectral guard "
+        f"{'on' if result['model']['spectral_guard'] else 'off'}.",
+        "",
+        "The reference was degraded by the scale, magnified back by each method and compared "
+        "with the reference over valid pixels (Wald, Ranchin & Mangolini, PE&RS 1997). "
+        "Bold marks the better value of each metric: higher PSNR, SSIM and Q; lower ERGAS, "
+        "SAM (degrees) and consistency error (RMS and max of degrade(output) - low-res input).",
+        "",
+        f"> **Caution.** {SCORES_CAUTION}",
+        "",
+    ]
+    lines += _table({m: result[m]["overall"] for m in METHODS}, "Overall")
+    for b, name in enumerate(band_names):
+        lines += _table({m: result[m]["bands"][b] for m in METHODS}, f"Band {name}")
+    lines += ["## Figures", ""] + [f"- `{f}`" for f in figures] + [""]
+    with open(path, "w", encoding="utf-8") as fh:
+        fh.write("\n".join(lines))
+
+
+def _display(stack, lo, hi):
+    """(bands, r, c) -> image for imshow: RGB from the first three bands or grey."""
+    scaled = np.clip((stack - lo) / (hi - lo if hi > lo else 1.0), 0, 1)
+    if stack.shape[0] >= 3:
+        return np.moveaxis(scaled[:3], 0, -1), None
+    return scaled[0], "gray"
+
+
+def _write_figures(folder, ref, outputs, valid, window, band_names):
+    names = []
+    r, c, size = window
+    crop = (slice(None), slice(r, r + size), slice(c, c + size))
+    vals = ref[crop][:, valid[r : r + size, c : c + size]]
+    lo, hi = (np.percentile(vals, [2, 98]) if vals.size else (ref.min(), ref.max()))
+    fig = _figure(figsize=(12, 4.4))
+    for i, (title, img) in enumerate(
+        [("reference", ref), ("GDAL bicubic", outputs["bicubic"]), ("geosr", outputs["geosr"])]
+    ):
+        ax = fig.add_subplot(1, 3, i + 1)
+        shown, cmap = _display(np.nan_to_num(img[crop]), lo, hi)
+        ax.imshow(shown, cmap=cmap, interpolation="nearest")
+        ax.set_title(title)
+        ax.set_axis_off()
+    fig.suptitle(f"Most textured {size} x {size} window at row {r}, col {c} "
+                 "(geosr detail is synthesized)")
+    names.append("crop_comparison.png")
+    fig.savefig(os.path.join(folder, names[-1]), dpi=100)
+
+    errs = {m: np.abs(np.nan_to_num(outputs[m]) - ref).mean(axis=0) for m in METHODS}
+    vmax = max(float(np.percentile(e[valid], 99)) for e in errs.values()) or 1.0
+    for m in METHODS:
+        fig = _figure(figsize=(6, 6))
+        ax = fig.add_subplot(1, 1, 1)
+        im = ax.imshow(np.ma.masked_array(errs[m], ~valid), cmap="magma", vmin=0, vmax=vmax,
+                       interpolation="nearest")
+        fig.colorbar(im, ax=ax, shrink=0.8, label="absolute error (band mean)")
+        ax.set_title(f"|{m} - reference|")
+        ax.set_axis_off()
+        names.append(f"error_{m}.png")
+        fig.savefig(os.path.join(folder, names[-1]), dpi=100)
+    return names
+
+
+def _write_gain_chart(folder, result, band_names):
+    gain = [g["psnr"] - b["psnr"] for g, b in zip(result["geosr"]["bands"], result["bicubic"]["bands"])]
+    fig = _figure(figsize=(max(4, 1 + 0.8 * len(gain)), 4))
+    ax = fig.add_subplot(1, 1, 1)
+    ax.bar([str(n) for n in band_names], gain, color=["tab:green" if g >= 0 else "tab:red" for g in gain])
+    ax.axhline(0, color="black", linewidth=0.8)
+    ax.set_xlabel("band")
+    ax.set_ylabel("PSNR gain over GDAL bicubic (dB)")
+    ax.set_title("geosr - bicubic, per band")
+    fig.tight_layout()
+    fig.savefig(os.path.join(folder, "psnr_gain.png"), dpi=100)
+    return ["psnr_gain.png"]
+
+
+def prepare_destination(report_dir, overwrite):
+    report_dir = os.path.abspath(os.fspath(report_dir))
+    if os.path.exists(report_dir):
+        if not os.path.isdir(report_dir):
+            raise DestinationError(
+                f"The 'report_dir' parameter must be a folder, got an existing file {report_dir!r}"
+            )
+        if os.listdir(report_dir) and not overwrite:
+            raise DestinationError(
+                f"The 'report_dir' parameter must be an empty or new folder (or pass "
+                f"overwrite=True), got a non-empty folder {report_dir!r}"
+            )
+    parent = os.path.dirname(report_dir)
+    if not os.path.isdir(parent):
+        raise DestinationError(f"The 'report_dir' parameter must be in an existing folder, got {report_dir!r}")
+    return report_dir
+
+
+def _publish(tmp, report_dir):
+    """Move the finished temp folder into place, replacing an old report."""
+    old = None
+    if os.path.exists(report_dir):
+        old = tempfile.mkdtemp(prefix=".geosr-report-old-", dir=os.path.dirname(report_dir))
+        os.rmdir(old)
+        os.rename(report_dir, old)
+    try:
+        os.rename(tmp, report_dir)
+    except BaseException:
+        if old is not None:
+            os.rename(old, report_dir)
+        raise
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
+
+
+def write_report(
+    report_dir: str,
+    result: dict[str, Any],
+    ref: np.ndarray,
+    outputs: Mapping[str, np.ndarray],
+    valid: np.ndarray,
+    crop_size: int,
+    band_names: Sequence[str],
+) -> None:
+    """Write metrics.json, report.md and the figures into ``report_dir``.
+
+    Everything goes into a temporary folder beside ``report_dir`` that is
+    renamed into place at the end, so a failed run leaves no half report.
+    ``result`` gains ``figures`` and ``protocol["figure_window"]``.
+    """
+    rows, cols = ref.shape[1:]
+    size = int(min(crop_size, rows, cols))
+    r0, c0 = _most_textured(ref, valid, size)
+    tmp = tempfile.mkdtemp(prefix=".geosr-report-", dir=os.path.dirname(report_dir))
+    try:
+        figures = _write_figures(tmp, ref, outputs, valid, (r0, c0, size), band_names)
+        figures += _write_gain_chart(tmp, result, band_names)
+        result["figures"] = figures
+        result["protocol"]["figure_window"] = {"row_off": r0, "col_off": c0, "size": size}
+        with open(os.path.join(tmp, "metrics.json"), "w", encoding="utf-8") as fh:
+            json.dump(result, fh, indent=2, allow_nan=True)
+        _write_markdown(os.path.join(tmp, "report.md"), result, band_names, figures)
+        _publish(tmp, report_dir)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            shutil.rmtree(tmp)
+        raise
