@@ -4,17 +4,20 @@ One call, :func:`run_tasks`, runs ``func(job, shared)`` for every job and
 hands each result to ``consume`` in the main process as soon as it arrives
 (completion order), so a single writer can write finished blocks while
 others are computed and memory stays bounded by the number of blocks in
-flight, not by the scene.
+flight, not by the scene. Local runs keep a window of as many tasks in
+flight as there are workers on a :mod:`concurrent.futures` pool (jobs start
+in their own order, so the writer fills the file front to back); cluster
+runs do the same through ``distributed.Client.submit`` and
+``distributed.as_completed``.
 
 Where the tasks run (``scheduler``):
 
 ``None`` / ``"threads"``
-    dask's local threaded scheduler (the default; numpy and GDAL release
-    the GIL). ``workers`` sets the thread count.
+    a pool of threads (the default; numpy and GDAL release the GIL).
+    ``workers`` sets the thread count.
 ``"processes"``
-    dask's local multiprocessing scheduler over a pool of worker processes
-    forked from a clean fork server; the shared object (the models) is sent
-    once per process. As with any non-fork start method, a script that uses
+    a pool of worker processes forked from a clean fork server; the shared
+    object (the models) is sent once per process. As with any non-fork start method, a script that uses
     it must guard its entry point with ``if __name__ == "__main__":``.
 ``"synchronous"``
     one task after the other in the calling thread (debugging).
@@ -36,6 +39,7 @@ from __future__ import annotations
 import concurrent.futures
 import contextlib
 import dataclasses
+import itertools
 import logging
 import multiprocessing
 import os
@@ -209,32 +213,49 @@ def _call_local(func, token, job, retries, limit_blas):
     return _call(func, job, _SHARED[token], retries, limit_blas)
 
 
+def _stream(submit, jobs, window, consume, progress):
+    """Keep ``window`` tasks in flight; consume results in the calling thread as they finish.
+
+    A finished task's slot is refilled before its result is consumed, so the
+    workers stay busy while the writer writes; at most ``window`` results
+    wait for the writer, plus the one being written.
+    """
+    pending = iter(enumerate(jobs))
+    running = {}  # future -> job index
+
+    def fill():
+        for i, job in itertools.islice(pending, window - len(running)):
+            running[submit(job)] = i
+
+    fill()
+    while running:
+        finished, _ = concurrent.futures.wait(running, return_when=concurrent.futures.FIRST_COMPLETED)
+        for future in sorted(finished, key=running.get):
+            del running[future]
+            fill()
+            consume(future.result())
+            if progress is not None:
+                progress.update()
+
+
+def _run_pool(pool, submit, jobs, window, consume, progress):
+    try:
+        _stream(submit, jobs, window, consume, progress)
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
 def _run_local(spec, func, jobs, shared, consume, retries, progress, label):
-    import dask.local
-    import dask.multiprocessing
-    import dask.threaded
-
-    token = uuid.uuid4().hex
-    name = f"geosr-{label}-{token}"
-    limit_blas = spec.kind == "processes"
-    # dask breaks priority ties between independent tasks by key, last first:
-    # zero-padded keys counting down make the jobs start in their own order
-    # (row-major blocks, so the writer fills the file front to back).
-    n = len(jobs)
-    dsk = {f"{name}-{n - 1 - i:09d}": (_call_local, func, token, job, retries, limit_blas)
-           for i, job in enumerate(jobs)}
-    keys = list(dsk)
-
-    def posttask(key, result, dsk_, state, worker_id):
-        consume(result)
-        # The result is written: drop it from the scheduler's cache at once.
-        state["cache"][key] = None
-        if progress is not None:
-            progress.update()
-
-    callbacks = [(None, None, None, posttask, None)]
-    if not keys:
+    """Local threads or processes through :mod:`concurrent.futures`, or the calling thread."""
+    if not jobs:
         return 0
+    if spec.kind == "synchronous":
+        for job in jobs:
+            consume(_call(func, job, shared, retries, False))
+            if progress is not None:
+                progress.update()
+        return len(jobs)
+    token = uuid.uuid4().hex
     if spec.kind == "processes":
         payload = pickle.dumps(shared, protocol=pickle.HIGHEST_PROTOCOL)
         pool = concurrent.futures.ProcessPoolExecutor(
@@ -244,29 +265,21 @@ def _run_local(spec, func, jobs, shared, consume, retries, progress, label):
             initargs=(token, payload),
         )
         try:
-            dask.multiprocessing.get(dsk, keys, pool=pool, num_workers=spec.workers,
-                                     callbacks=callbacks, optimize_graph=False)
+            _run_pool(pool, lambda job: pool.submit(_call_local, func, token, job, retries, True),
+                      jobs, spec.workers, consume, progress)
         except concurrent.futures.process.BrokenProcessPool as exc:
             raise RunError(f"A worker process of the local pool died during the run: {exc}") from None
-        finally:
-            pool.shutdown(wait=True, cancel_futures=True)
-        return len(keys)
+        return len(jobs)
     _SHARED[token] = shared
     try:
-        if spec.kind == "synchronous":
-            dask.local.get_sync(dsk, keys, callbacks=callbacks)
-        else:
-            pool = concurrent.futures.ThreadPoolExecutor(max_workers=spec.workers)
-            try:
-                limit = threadpool_limits(limits=1, user_api="blas") if spec.workers > 1 else contextlib.nullcontext()
-                with limit:
-                    dask.threaded.get(dsk, keys, pool=pool, num_workers=spec.workers,
-                                      callbacks=callbacks)
-            finally:
-                pool.shutdown(wait=True, cancel_futures=True)
+        pool = concurrent.futures.ThreadPoolExecutor(max_workers=spec.workers)
+        limit = threadpool_limits(limits=1, user_api="blas") if spec.workers > 1 else contextlib.nullcontext()
+        with limit:
+            _run_pool(pool, lambda job: pool.submit(_call_local, func, token, job, retries, False),
+                      jobs, spec.workers, consume, progress)
     finally:
         _SHARED.pop(token, None)
-    return len(keys)
+    return len(jobs)
 
 
 # ------------------------------------------------------------ distributed runs

@@ -20,9 +20,10 @@ if TYPE_CHECKING:
 __all__ = ["magnify_array"]
 
 
-def _array_block(plan, block, models):
-    """A block as float values with NaN where the output is invalid."""
-    return magnify_block_values(plan, block, models)
+def _array_chunk(plan, grid, models, block_id=None):
+    """Chunk ``block_id`` of the array: its block as float values, NaN where invalid."""
+    _, i, j = block_id
+    return magnify_block_values(plan, grid[i][j], models)
 
 
 def magnify_array(
@@ -64,6 +65,7 @@ def magnify_array(
         float32 for float32 sources, float64 otherwise; NaN where the output
         is invalid (nodata, masked, or not finite in the input).
     """
+    import dask
     import dask.array as da
     from dask.base import tokenize
 
@@ -83,16 +85,11 @@ def magnify_array(
     plan, chunk, band_sel = mplan.block_plan, mplan.chunk, split.selected
     blocks = mplan.blocks
     name = "geosr-magnify-" + tokenize(info.path, plan, [model_sha(m) for m in models], chunk)
-    models_key = name + "-models"
     rows = sorted({b.row_off for b in blocks})
-    cols = sorted({b.col_off for b in blocks})
-    dsk = {models_key: models}
-    for b in blocks:
-        dsk[(name, 0, rows.index(b.row_off), cols.index(b.col_off))] = (_array_block, plan, b, models_key)
-    heights = tuple(scale * min(chunk, info.height - r) for r in rows)
-    widths = tuple(scale * min(chunk, info.width - c) for c in cols)
-    chunks = ((len(band_sel),), heights, widths)
-    from dask.highlevelgraph import HighLevelGraph
-
-    graph = HighLevelGraph.from_collections(name, dsk, dependencies=())
-    return da.Array(graph, name, chunks, dtype=np.dtype(work))
+    grid = tuple(tuple(b for b in blocks if b.row_off == r) for r in rows)
+    chunks = ((len(band_sel),), tuple(scale * g[0].height for g in grid),
+              tuple(scale * b.width for b in grid[0]))
+    # One graph node holds the models, named so that dask never hashes their arrays.
+    shared = dask.delayed(models, name=name + "-models", traverse=False)
+    return da.map_blocks(_array_chunk, plan, grid, shared, name=name, chunks=chunks,
+                         dtype=np.dtype(work), meta=np.empty((0, 0, 0), dtype=work))
