@@ -16,8 +16,8 @@ thousand pixels on a side.
 from __future__ import annotations
 
 import dataclasses
+import logging
 import os
-import sys
 import warnings
 from collections.abc import Sequence
 from typing import Any
@@ -51,6 +51,8 @@ from ..core.resample import (
 )
 
 __all__ = ["assess_raster", "METHODS", "HIGHER_IS_BETTER"]
+
+log = logging.getLogger(__name__)
 
 # --------------------------------------------------------------------------
 # Protocol pieces (arrays only)
@@ -187,11 +189,6 @@ def _resolve_models(model, self_train, scale, method, low, low_valid, degradatio
 # --------------------------------------------------------------------------
 # The steps of assess_raster
 # --------------------------------------------------------------------------
-
-
-def _say(quiet, message):
-    if not quiet:
-        print(f"geosr assess: {message}", file=sys.stderr)
 
 
 def _check_degradation(scale, degradation, sigma):
@@ -375,7 +372,6 @@ def assess_raster(
     workers: int | None = None,
     scheduler: Any = None,
     overwrite: bool = False,
-    quiet: bool = False,
 ) -> dict[str, Any]:
     """Assess magnification of a raster under Wald's protocol and write a report.
 
@@ -431,8 +427,8 @@ def assess_raster(
         memory in this process, so ``workers`` and ``scheduler`` must be unset.
     overwrite : bool
         Replace an existing non-empty report folder.
-    quiet : bool
-        No progress messages on stderr.
+
+    Progress messages go to the ``geosr.assess.protocol`` logger (INFO).
 
     Returns
     -------
@@ -465,14 +461,14 @@ def assess_raster(
     report_dir = prepare_destination(report_dir, overwrite)
     ref = _read_reference(reference, bands, s)
     n_bands, rows, cols = ref.data.shape
-    _say(quiet, f"degrading {n_bands} band(s) of {rows} x {cols} by {s} ({deg_name})")
+    log.info("degrading %d band(s) of %d x %d by %d (%s)", n_bands, rows, cols, s, deg_name)
     low = _degrade_reference(ref, s, deg_name, sigma_used)
     choice = _resolve_models(model, self_train, s, method, low.data,
                              np.broadcast_to(low.valid, low.data.shape), deg_name, sigma_used,
                              training, ref.bands)
-    _say(quiet, "magnifying with geosr" + (" (self-trained)" if self_train else ""))
+    log.info("magnifying with geosr%s", " (self-trained)" if self_train else "")
     outputs, guarded = _magnify_back(ref, low, choice.models, s, consistency, ensemble, spectral_guard)
-    _say(quiet, "computing metrics")
+    log.info("computing metrics")
     result, data_range = _compare(ref, low, outputs, s, deg_name, sigma_used)
     result["geosr_version"] = __version__
     shas = [model_sha(m) for m in choice.models]
@@ -483,5 +479,5 @@ def assess_raster(
                        "ensemble": bool(ensemble), "spectral_guard": guarded}
     result["protocol"] = _protocol(ref, low, s, deg_name, sigma_used, data_range)
     write_report(report_dir, result, ref.data, outputs, low.eval_valid, crop_size, ref.band_names)
-    _say(quiet, f"wrote {report_dir}")
+    log.info("wrote %s", report_dir)
     return result

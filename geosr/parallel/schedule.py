@@ -46,12 +46,17 @@ import os
 import pickle
 import uuid
 import warnings
+from collections.abc import Callable, Iterable
+from typing import Any
 
 from threadpoolctl import threadpool_limits
 
 from ..errors import GeosrError, ParameterError, RunError
 
-__all__ = ["SchedulerSpec", "resolve_scheduler", "run_tasks", "default_workers"]
+__all__ = ["ProgressCallback", "SchedulerSpec", "resolve_scheduler", "run_tasks", "default_workers"]
+
+#: A progress callback: ``progress(done, total)`` in the calling process.
+ProgressCallback = Callable[[int, int], None]
 
 _LOCAL_KINDS = ("threads", "processes", "synchronous")
 
@@ -63,7 +68,7 @@ CONNECT_TIMEOUT = "20s"
 _SHARED = {}
 
 
-def default_workers():
+def default_workers() -> int:
     """Number of local workers: the CPUs this process may use."""
     try:
         return max(1, len(os.sched_getaffinity(0)))
@@ -87,11 +92,12 @@ class SchedulerSpec:
     """
 
     kind: str
-    workers: object = None
-    address: object = None
-    client: object = None
+    workers: int | None = None
+    address: str | None = None
+    client: Any = None
 
-    def describe(self):
+    def describe(self) -> str:
+        """The scheduler in words, for reports."""
         if self.kind == "distributed":
             return f"dask.distributed cluster at {self.address or 'the given client'}"
         if self.kind == "local-cluster":
@@ -109,7 +115,7 @@ def _check_workers(workers):
     return workers
 
 
-def resolve_scheduler(scheduler=None, workers=None):
+def resolve_scheduler(scheduler: str | Any = None, workers: int | None = None) -> SchedulerSpec:
     """Turn the ``scheduler`` and ``workers`` options into a :class:`SchedulerSpec`.
 
     Parameters
@@ -401,8 +407,30 @@ def _run_distributed(spec, func, jobs, shared, consume, retries, progress, label
     return done
 
 
-def run_tasks(func, jobs, shared, consume, *, scheduler=None, workers=None, retries=2,
-              progress=None, label="block"):
+class _Ticker:
+    """Counts finished tasks and reports ``(done, total)`` to a progress callback."""
+
+    def __init__(self, progress, total):
+        self.progress, self.total, self.done = progress, total, 0
+        progress(0, total)
+
+    def update(self):
+        self.done += 1
+        self.progress(self.done, self.total)
+
+
+def run_tasks(
+    func: Callable[[Any, Any], Any],
+    jobs: Iterable[Any],
+    shared: Any,
+    consume: Callable[[Any], None],
+    *,
+    scheduler: SchedulerSpec | str | Any = None,
+    workers: int | None = None,
+    retries: int = 2,
+    progress: ProgressCallback | None = None,
+    label: str = "block",
+) -> int:
     """Run ``func(job, shared)`` for every job; feed results to ``consume``.
 
     Parameters
@@ -420,8 +448,10 @@ def run_tasks(func, jobs, shared, consume, *, scheduler=None, workers=None, retr
         See :func:`resolve_scheduler`.
     retries : int
         Extra attempts for a failing task.
-    progress : geosr.parallel.progress.Progress, optional
-        Updated once per finished task.
+    progress : callable, optional
+        Called in the calling process as ``progress(done, total)``: with
+        ``done = 0`` before the first task, then after each result is
+        consumed.
     label : str
         Names the tasks (``geosr-<label>-...`` keys on a cluster).
 
@@ -442,6 +472,8 @@ def run_tasks(func, jobs, shared, consume, *, scheduler=None, workers=None, retr
         raise ParameterError(f"The 'retries' parameter must be an integer from 0 to 100, got {retries!r}")
     spec = scheduler if isinstance(scheduler, SchedulerSpec) else resolve_scheduler(scheduler, workers)
     jobs = list(jobs)
+    if progress is not None:
+        progress = _Ticker(progress, len(jobs))
     try:
         if spec.kind in _LOCAL_KINDS:
             return _run_local(spec, func, jobs, shared, consume, retries, progress, label)

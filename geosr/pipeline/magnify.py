@@ -13,8 +13,8 @@ end.
 from __future__ import annotations
 
 import dataclasses
+import logging
 import os
-import sys
 import time
 import warnings
 from collections.abc import Mapping, Sequence
@@ -25,8 +25,7 @@ import numpy as np
 from .._validation import check_bool, check_int, check_scale
 from ..enums import Method
 from ..errors import GeoreferencingWarning, InputError, ParameterError
-from ..parallel.progress import Progress
-from ..parallel.schedule import SchedulerSpec, resolve_scheduler, run_tasks
+from ..parallel.schedule import ProgressCallback, SchedulerSpec, resolve_scheduler, run_tasks
 from ..raster.blocks import BlockPlan, ResidualStats, magnify_one_block
 from ..raster.io import (
     SourceInfo,
@@ -35,7 +34,6 @@ from ..raster.io import (
     check_free_space as _check_free_space,
     inspect_source,
     remove_stale_temps,
-    terminate_as_interrupt,
 )
 from ..raster.masks import MaskMode
 from ..raster.profiles import (
@@ -82,8 +80,10 @@ __all__ = [
 #: header that declares an enormous raster in a tiny file).
 DEFAULT_MAX_OUTPUT_BYTES = 256 * 2**30
 
+log = logging.getLogger(__name__)
+
 #: Keys of ``training`` that the run sets itself.
-_RUN_KEYS = ("bands", "scheduler", "workers", "quiet")
+_RUN_KEYS = ("bands", "scheduler", "workers")
 
 
 @dataclasses.dataclass(frozen=True)
@@ -109,7 +109,6 @@ class _Options:
     ensemble: bool
     spectral_guard: bool
     stac: bool
-    quiet: bool
     self_train: bool
     training: dict[str, Any] | None
     check_free_space: bool
@@ -117,10 +116,11 @@ class _Options:
     retries: int
     scheduler: SchedulerSpec
     creation_options: dict[str, str]
+    progress: ProgressCallback | None
 
 
 def _check_options(model, *, scale, method, chunk_size, workers, scheduler, creation_options,
-                   max_output_bytes, training, retries, **flags):
+                   max_output_bytes, training, retries, progress, **flags):
     """Validate every option before the source is opened."""
     flags = {name: check_bool(value, name) for name, value in flags.items()}
     if scale is not None:
@@ -132,11 +132,14 @@ def _check_options(model, *, scale, method, chunk_size, workers, scheduler, crea
         raise ParameterError("The 'model' parameter must not be given with self_train=True, got a model")
     if training is not None and not flags["self_train"]:
         raise ParameterError("The 'training' parameter must only be given with self_train=True")
+    if progress is not None and not callable(progress):
+        raise ParameterError(f"The 'progress' parameter must be callable, got {type(progress).__name__}")
     spec = resolve_scheduler(scheduler, workers)
     user_opts = parse_creation_options(creation_options)
     check_chunk_size(chunk_size)
     return _Options(
         scale=scale, method=method, chunk_size=chunk_size, training=training, retries=retries,
+        progress=progress,
         check_free_space=flags.pop("check_free_space"), max_output_bytes=max_output_bytes,
         scheduler=spec, creation_options=user_opts, **flags,
     )
@@ -176,7 +179,7 @@ def _self_train(info, magnified, scale, opts):
     options.setdefault("retries", opts.retries)
     models = train_from_rasters(
         [info.path], scale, bands=list(magnified), method=opts.method, scheduler=opts.scheduler,
-        quiet=opts.quiet, **options,
+        **options,
     )
     check_models(models, scale, opts.method, magnified)
     return models
@@ -286,9 +289,8 @@ def _run_blocks(plan, output, tmp, opts):
             if result.residual is not None:
                 counts["residual"] = counts["residual"] + result.residual
 
-        with Progress(len(jobs), "magnify", quiet=opts.quiet) as bar:
-            run_tasks(_magnify_task, jobs, list(plan.models), consume, scheduler=opts.scheduler,
-                      retries=opts.retries, progress=bar, label="magnify")
+        run_tasks(_magnify_task, jobs, list(plan.models), consume, scheduler=opts.scheduler,
+                  retries=opts.retries, progress=opts.progress, label="magnify")
         residuals = None
         if opts.consistency:
             residuals = consistency_residuals(counts["residual"], bp.roles)
@@ -331,7 +333,9 @@ def _stac_item(plan, output, dst_path, cog):
 def _write_outputs(plan, output, dests, opts):
     """Write the raster (and the COG copy and STAC sidecar) and rename them into place.
 
-    A failure or an interrupt leaves neither the destination nor a temporary.
+    A failure or an interrupt (KeyboardInterrupt) leaves neither the
+    destination nor a temporary. Turning SIGTERM into KeyboardInterrupt is
+    the program's choice (the command line does).
     """
     from ..raster.writing import copy_to_cog
 
@@ -339,13 +343,12 @@ def _write_outputs(plan, output, dests, opts):
     remove_stale_temps(dst_path)
     if stac_dst is not None:
         remove_stale_temps(stac_dst)
-    with terminate_as_interrupt(), TempFiles() as temps:
+    with TempFiles() as temps:
         tmp = temps.scratch(dst_path, ".tif") if opts.cog else temps.new(dst_path, ".tif")
         residuals = _run_blocks(plan, output, tmp, opts)
         if opts.cog:
             final = temps.new(dst_path, ".tif")
-            if not opts.quiet:
-                print("magnify: writing the Cloud Optimized GeoTIFF", file=sys.stderr)
+            log.info("writing the Cloud Optimized GeoTIFF")
             copy_to_cog(tmp, final, output.cog_options)
             temps.discard(tmp)
         if stac_dst is not None:
@@ -372,12 +375,12 @@ def magnify_raster(
     ensemble: bool = False,
     spectral_guard: bool = True,
     stac: bool = False,
-    quiet: bool = False,
     retries: int = 2,
     self_train: bool = False,
     training: dict[str, Any] | None = None,
     max_output_bytes: int = DEFAULT_MAX_OUTPUT_BYTES,
     check_free_space: bool = True,
+    progress: ProgressCallback | None = None,
 ) -> MagnifyResult:
     """Magnify a georeferenced raster and write it as a GeoTIFF (or COG).
 
@@ -431,8 +434,6 @@ def magnify_raster(
         the ``GEOSR_SPECTRAL_GUARD`` tag says whether it was.
     stac : bool
         Also write a STAC Item sidecar (``dst`` with ``.json``).
-    quiet : bool
-        No progress bar on stderr.
     retries : int
         Extra attempts for a failing block task.
     self_train : bool
@@ -440,12 +441,17 @@ def magnify_raster(
         reference) before magnifying it.
     training : dict, optional
         Keyword arguments of :func:`~geosr.pipeline.train.train_from_rasters` for ``self_train``
-        (``shared``, ``max_samples``, ``n_atoms``, ...).
+        (``shared``, ``max_samples``, ``n_atoms``, ``progress``, ...).
     max_output_bytes : int
         Refuse outputs larger than this, uncompressed.
     check_free_space : bool
         Refuse to start when the destination's file system has less room
         than the uncompressed output (twice that for a COG).
+    progress : callable, optional
+        Called as ``progress(done, total)`` with the number of finished
+        blocks: ``(0, total)`` before the first, then once per block. The
+        self-training stage reports through ``training["progress"]``.
+        Messages go to the ``geosr.pipeline.magnify`` logger.
 
     Returns
     -------
@@ -469,8 +475,8 @@ def magnify_raster(
         model, scale=scale, method=method, chunk_size=chunk_size, workers=workers,
         scheduler=scheduler, creation_options=creation_options, max_output_bytes=max_output_bytes,
         training=training, retries=retries, overwrite=overwrite, cog=cog, consistency=consistency,
-        ensemble=ensemble, spectral_guard=spectral_guard, stac=stac, quiet=quiet,
-        self_train=self_train, check_free_space=check_free_space,
+        ensemble=ensemble, spectral_guard=spectral_guard, stac=stac, self_train=self_train,
+        check_free_space=check_free_space, progress=progress,
     )
     plan, dests = _plan(src, dst, model, bands, opts)
     output = _describe_output(plan, opts)

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
+import logging
 import os
-import sys
 from collections.abc import Sequence
 from typing import Any
 
@@ -12,8 +12,7 @@ import numpy as np
 from .._validation import check_bool, check_int, check_scale
 from ..enums import Method
 from ..errors import InputError, ParameterError
-from ..parallel.progress import Progress
-from ..parallel.schedule import SchedulerSpec, resolve_scheduler, run_tasks
+from ..parallel.schedule import ProgressCallback, SchedulerSpec, resolve_scheduler, run_tasks
 from ..raster.io import SourceInfo, check_bands, check_destination, inspect_source
 from ..raster.training import (
     TrainJob,
@@ -27,6 +26,8 @@ from ..raster.windows import check_chunk_size
 from .plan import SELF_TRAIN_DEFAULTS
 
 __all__ = ["train_from_rasters"]
+
+log = logging.getLogger(__name__)
 
 #: Pairs collected per model, before the model's own random subset.
 _OVERSAMPLE = 1.5
@@ -95,7 +96,7 @@ def _train_jobs(infos, selections, scale, chunk, shared, halo, retries, budget, 
     return [TrainJob(i, plan, b, quota, seeds[i]) for i, (plan, b, quota) in enumerate(found)]
 
 
-def _collect(jobs, models, spec, retries, quiet):
+def _collect(jobs, models, spec, retries, progress):
     """Run the collection tasks; the pairs pooled per model, in job order."""
     results = {}
 
@@ -103,9 +104,8 @@ def _collect(jobs, models, spec, retries, quiet):
         order, samples = result
         results[order] = samples
 
-    with Progress(len(jobs), "train: collect", quiet=quiet) as bar:
-        run_tasks(_collect_task, jobs, models, consume, scheduler=spec, retries=retries,
-                  progress=bar, label="train")
+    run_tasks(_collect_task, jobs, models, consume, scheduler=spec, retries=retries,
+              progress=progress, label="train")
     pooled = [[] for _ in models]
     for order in sorted(results):
         for group, sample in results[order]:
@@ -113,12 +113,10 @@ def _collect(jobs, models, spec, retries, quiet):
     return pooled
 
 
-def _fit(models, pooled, names, max_samples, quiet):
+def _fit(models, pooled, names, max_samples):
     for model, samples, name in zip(models, pooled, names):
-        if not quiet:
-            n = sum(len(s) for s in samples)
-            print(f"train: fitting the model for {name} on {min(n, max_samples)} pairs",
-                  file=sys.stderr)
+        n = sum(len(s) for s in samples)
+        log.info("fitting the model for %s on %d pairs", name, min(n, max_samples))
         if not samples:
             raise InputError(
                 f"The references must have textured valid pixels in {name}, got no usable "
@@ -141,8 +139,8 @@ def train_from_rasters(
     scheduler: Any = None,
     retries: int = 2,
     random_state: int | None = _DEFAULTS["random_state"],
-    quiet: bool = False,
     output: str | os.PathLike[str] | None = None,
+    progress: ProgressCallback | None = None,
     **model_params: Any,
 ) -> list[Any]:
     """Learn models from high-res reference rasters, read window by window.
@@ -170,10 +168,12 @@ def train_from_rasters(
         As in :func:`geosr.pipeline.magnify.magnify_raster`.
     random_state : int or None
         Seed of the sampling and of the models.
-    quiet : bool
-        No progress bar.
     output : str or os.PathLike, optional
         Also save the models there (``geosr.modelfile.save_models``).
+    progress : callable, optional
+        Called as ``progress(done, total)`` with the number of windows read:
+        ``(0, total)`` before the first, then once per window. Messages go
+        to the ``geosr.pipeline.train`` logger.
     **model_params
         Further ``CoupledDictionary`` parameters (``n_atoms``, ``n_iter``,
         ``sparsity``, ``degradation``, ...).
@@ -189,7 +189,6 @@ def train_from_rasters(
 
     scale = check_scale(scale)
     shared = check_bool(shared, "shared")
-    quiet = check_bool(quiet, "quiet")
     paths = [paths] if isinstance(paths, (str, os.PathLike)) else list(paths)
     if not paths:
         raise ParameterError("The 'paths' parameter must name at least one raster, got none")
@@ -205,10 +204,10 @@ def train_from_rasters(
     models = [CoupledDictionary(scale=scale, **params) for _ in range(1 if shared else len(selections[0]))]
     jobs = _train_jobs(infos, selections, scale, chunk, shared, int(models[0].training_halo()),
                        retries, _OVERSAMPLE * max_samples, random_state)
-    pooled = _collect(jobs, models, spec, retries, quiet)
+    pooled = _collect(jobs, models, spec, retries, progress)
     first = infos[0]
     names = ["shared"] if shared else [first.descriptions[b - 1] or f"band{b}" for b in selections[0]]
-    _fit(models, pooled, names, max_samples, quiet)
+    _fit(models, pooled, names, max_samples)
     if output is not None:
         save_models(output, models, band_names=names)
     return models

@@ -16,9 +16,7 @@ import os
 import re
 import secrets
 import shutil
-import signal
 import socket
-import threading
 import warnings
 from pathlib import Path
 
@@ -41,7 +39,6 @@ __all__ = [
     "TempFiles",
     "temp_path",
     "remove_stale_temps",
-    "terminate_as_interrupt",
 ]
 
 #: Pixel types geosr magnifies (complex and 64-bit integers are refused).
@@ -573,33 +570,3 @@ def _remove_with_sidecars(tmp):
     for p in (Path(tmp), Path(str(tmp) + ".aux.xml"), Path(str(tmp) + ".msk"), Path(str(tmp) + ".ovr")):
         with contextlib.suppress(OSError):
             p.unlink()
-
-
-@contextlib.contextmanager
-def terminate_as_interrupt():
-    """Turn SIGTERM into KeyboardInterrupt for the duration, in the main thread.
-
-    Cleanup code in ``finally`` blocks then runs for SIGTERM as it does for
-    Ctrl-C. Does nothing outside the main thread, or when the program has
-    installed its own SIGTERM handler.
-    """
-    if threading.current_thread() is not threading.main_thread():
-        yield
-        return
-    try:
-        previous = signal.getsignal(signal.SIGTERM)
-    except (ValueError, AttributeError):
-        yield
-        return
-    if previous not in (signal.SIG_DFL, None):
-        yield
-        return
-
-    def _handler(signum, frame):
-        raise KeyboardInterrupt("terminated by SIGTERM")
-
-    signal.signal(signal.SIGTERM, _handler)
-    try:
-        yield
-    finally:
-        signal.signal(signal.SIGTERM, previous)

@@ -65,7 +65,7 @@ def astronaut_tif(tmp_path_factory):
 @pytest.fixture(scope="module")
 def astronaut_x2(astronaut_tif, tmp_path_factory):
     out = tmp_path_factory.mktemp("rep") / "report"
-    return out, assess_raster(astronaut_tif, out, 2, quiet=True, **_model_kwargs(2))
+    return out, assess_raster(astronaut_tif, out, 2, **_model_kwargs(2))
 
 
 def _check_beats_bicubic(result):
@@ -164,13 +164,13 @@ def test_refuses_non_empty_folder_and_leaves_no_half_report(astronaut_tif, tmp_p
     full.mkdir()
     (full / "keep.txt").write_text("x")
     with pytest.raises(DestinationError):
-        assess_raster(astronaut_tif, full, 2, quiet=True)
+        assess_raster(astronaut_tif, full, 2)
     assert os.listdir(full) == ["keep.txt"]
     # A model for another scale fails after the run started: nothing is left.
     wrong = CoupledDictionary(scale=3, method="anchored", n_atoms=16, n_iter=0, neighbours=64,
                               max_samples=2000).fit([np.random.default_rng(0).random((60, 60))])
     with pytest.raises(ModelError):
-        assess_raster(astronaut_tif, tmp_path / "new", 2, model=wrong, quiet=True)
+        assess_raster(astronaut_tif, tmp_path / "new", 2, model=wrong)
     assert sorted(os.listdir(tmp_path)) == ["full"]
 
 
@@ -183,7 +183,7 @@ def test_nodata_pixels_are_not_compared(tmp_path):
     _write_tif(tmp_path / "n.tif", arr, nodata=-9999.0)
     model = CoupledDictionary(scale=2, method="anchored", n_atoms=32, n_iter=0, neighbours=128,
                               max_samples=3000).fit([img])
-    r = assess_raster(tmp_path / "n.tif", tmp_path / "rep", 2, model=model, quiet=True)
+    r = assess_raster(tmp_path / "n.tif", tmp_path / "rep", 2, model=model)
     # rows 0-9 are nodata: the compared pixels are those under low-res cells
     # whose degradation reads no nodata (NaN spreading through degrade says which)
     with np.errstate(invalid="ignore"):
@@ -209,7 +209,7 @@ def landsat(request, tmp_path_factory):
         pytest.skip(f"shared test raster {LANDSAT} is absent (a user's clone)")
     scale = request.param
     out = tmp_path_factory.mktemp(f"landsat{scale}") / "report"
-    r = assess_raster(LANDSAT, out, scale, quiet=True, **_model_kwargs(scale))
+    r = assess_raster(LANDSAT, out, scale, **_model_kwargs(scale))
     for m in ("geosr", "bicubic"):
         o = r[m]["overall"]
         print(f"\nLandsat x{scale} {m}: " + ", ".join(f"{k}={o[k]:.4f}" for k in HIGHER_IS_BETTER))
@@ -241,7 +241,7 @@ def held_out_photo(request, tmp_path_factory):
     rgb = np.moveaxis(skimage_data.astronaut(), -1, 0)[:, :384, :384].copy()
     folder = tmp_path_factory.mktemp(f"photo{scale}")
     _write_tif(folder / "astronaut.tif", rgb)
-    return {guard: assess_raster(folder / "astronaut.tif", folder / f"rep{guard}", scale, quiet=True,
+    return {guard: assess_raster(folder / "astronaut.tif", folder / f"rep{guard}", scale,
                                  spectral_guard=guard, **_model_kwargs(scale))
             for guard in (True, False)}
 
@@ -259,9 +259,15 @@ def test_held_out_photo_beats_bicubic_with_guard(held_out_photo):
 
 
 @pytest.mark.slow
-def test_astronaut_self_train_beats_bicubic_x2(astronaut_tif, tmp_path):
+def test_astronaut_self_train_beats_bicubic_x2(astronaut_tif, tmp_path, caplog, capsys):
     # Bootstrapping: per-band models learned from the degraded photo itself.
-    r = assess_raster(astronaut_tif, tmp_path / "rep", 2, self_train=True, quiet=True)
+    with caplog.at_level("INFO", logger="geosr"):
+        r = assess_raster(astronaut_tif, tmp_path / "rep", 2, self_train=True)
+    # The steps go to the module's logger (the CLI prints them); nothing on stderr.
+    steps = [rec.getMessage() for rec in caplog.records if rec.name == "geosr.assess.protocol"]
+    assert steps[1:] == ["magnifying with geosr (self-trained)", "computing metrics",
+                         f"wrote {tmp_path / 'rep'}"]
+    assert steps[0].startswith("degrading 3 band(s) of ") and capsys.readouterr().err == ""
     assert r["model"]["count"] == 3
     assert isinstance(r["model_sha256"], list) and len(set(r["model_sha256"])) == 3
     _check_beats_bicubic(r)

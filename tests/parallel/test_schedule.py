@@ -76,9 +76,12 @@ def test_every_result_consumed_in_the_calling_thread(scheduler):
         threads.add(threading.current_thread())
         seen[result[0]] = result[1]
 
-    bar = Progress(20, quiet=True)
-    n = run_tasks(square, range(20), {"offset": 1}, consume, scheduler=scheduler, progress=bar)
-    assert n == 20 and bar.done == 20
+    calls = []
+    n = run_tasks(square, range(20), {"offset": 1}, consume, scheduler=scheduler,
+                  progress=lambda done, total: calls.append((done, total, threading.current_thread())))
+    assert n == 20
+    # (0, total) before the first task, then once per consumed result, in the calling thread.
+    assert calls == [(i, 20, threading.current_thread()) for i in range(21)]
     assert seen == {i: i * i + 1 for i in range(20)}
     assert threads == {threading.current_thread()}
 
@@ -159,13 +162,12 @@ def test_processes_scheduler_shares_once_per_worker():
 @pytest.mark.slow
 @pytest.mark.cluster
 def test_local_cluster_run_and_a_killed_worker(tmp_path):
-    got = []
-    bar = Progress(12, quiet=True)
+    got, calls = [], []
     run_tasks(dies_once, range(12), {"dir": str(tmp_path)}, got.append, workers=2, retries=2,
-              progress=bar)
+              progress=lambda done, total: calls.append((done, total)))
     assert (tmp_path / "died").exists()  # a worker really died mid-run
     assert sorted(got) == [(i, 10 * i) for i in range(12)]
-    assert bar.done == 12
+    assert calls == [(i, 12) for i in range(13)]
 
 
 def test_progress_text_and_quiet():
@@ -199,10 +201,10 @@ def test_joining_a_running_scheduler_by_address(monkeypatch):
                       dashboard_address=None) as cluster:
         address = cluster.scheduler_address
         assert address.startswith("tcp://127.0.0.1:")
-        got = []
-        bar = Progress(9, quiet=True)
-        n = run_tasks(square, range(9), {"offset": 2}, got.append, scheduler=address, progress=bar)
-        assert n == 9 and bar.done == 9
+        got, calls = [], []
+        n = run_tasks(square, range(9), {"offset": 2}, got.append, scheduler=address,
+                      progress=lambda done, total: calls.append((done, total)))
+        assert n == 9 and calls == [(i, 9) for i in range(10)]
         assert sorted(got) == [(i, i * i + 2) for i in range(9)]
         # The cluster outlives the run: it was joined, not started.
         assert cluster.scheduler.status.name == "running"

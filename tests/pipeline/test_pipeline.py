@@ -63,7 +63,7 @@ def test_chunked_equals_whole_float_nan(make_raster, run_dir, tiny_model, dtype,
     smallest = max(MIN_CHUNK, halo)
     for chunk in (smallest, 23, 40, 1024):
         dst = run_dir / f"c{chunk}.tif"
-        res = magnify_raster(src, dst, tiny_model, chunk_size=chunk, quiet=True)
+        res = magnify_raster(src, dst, tiny_model, chunk_size=chunk)
         assert res.halo == halo
         out = _read(dst)[0][0]
         assert out.dtype == np.dtype(dtype)  # float32 stays float32
@@ -83,7 +83,7 @@ def test_chunked_equals_whole_uint16_nodata(make_raster, run_dir, tiny_model):
     outs = []
     for chunk in (16, 33, 1024):
         dst = run_dir / f"u{chunk}.tif"
-        magnify_raster(src, dst, tiny_model, chunk_size=chunk, quiet=True)
+        magnify_raster(src, dst, tiny_model, chunk_size=chunk)
         outs.append(_read(dst)[0][0])
     hr_valid = np.repeat(np.repeat(valid, 2, 0), 2, 1)
     ref = np.clip(np.rint(expected), 1, 65535)
@@ -102,7 +102,7 @@ def test_contract_model_matches_gdal_cubic_grid(make_raster, run_dir, bicubic_mo
     img = camera(40, 52).astype(np.float32)
     src = make_raster(img)
     dst = run_dir / "bicubic.tif"
-    magnify_raster(src, dst, bicubic_model, chunk_size=16, quiet=True)
+    magnify_raster(src, dst, bicubic_model, chunk_size=16)
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         gdal = s.read(1, out_shape=(80, 104), resampling=Resampling.cubic)
         out = d.read(1)
@@ -118,7 +118,7 @@ def test_landsat_scene_contract(shared_file, run_dir, tiny_model):
     src = shared_file("RGB.byte.tif")
     before = sha256_of(src)
     dst = run_dir / "rgb_x2.tif"
-    res = magnify_raster(src, dst, tiny_model, chunk_size=256, quiet=True)
+    res = magnify_raster(src, dst, tiny_model, chunk_size=256)
     assert res.width == 2 * 791 and res.height == 2 * 718
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         assert (d.width, d.height, d.count) == (2 * s.width, 2 * s.height, s.count)
@@ -144,7 +144,7 @@ def test_all_nodata_gives_all_nodata_output_with_warning(shared_file, run_dir, t
     src = shared_file("all-nodata.tif")
     dst = run_dir / "empty.tif"
     with pytest.warns(UserWarning, match="no valid pixel"):
-        magnify_raster(src, dst, tiny_model, quiet=True, chunk_size=512)
+        magnify_raster(src, dst, tiny_model, chunk_size=512)
     with rasterio.open(dst) as d:
         assert (d.width, d.height, d.count) == (142, 4950, 4)
         assert d.read_masks().max() == 0
@@ -155,7 +155,7 @@ def test_float_nan_without_crs(shared_file, run_dir, tiny_model):
     src = shared_file("float_nan.tif")
     dst = run_dir / "fnan.tif"
     with pytest.warns(GeoreferencingWarning, match="no CRS"):
-        magnify_raster(src, dst, tiny_model, quiet=True)
+        magnify_raster(src, dst, tiny_model)
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         assert d.crs is None
         assert d.transform == s.transform @ Affine.scale(0.5)
@@ -169,7 +169,7 @@ def test_rotated_transform(shared_file, run_dir, tiny_model):
     src = shared_file("rotated.tif")
     dst = run_dir / "rot.tif"
     with pytest.warns(GeoreferencingWarning):
-        magnify_raster(src, dst, tiny_model, quiet=True)
+        magnify_raster(src, dst, tiny_model)
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         assert d.transform.almost_equals(s.transform @ Affine.scale(0.5))
         assert s.transform.b != 0  # the file really is rotated
@@ -183,7 +183,7 @@ def test_corrupt_blocks_give_one_clear_error_and_no_output(shared_file, run_dir,
     before = sha256_of(src)
     dst = run_dir / "bad.tif"
     with pytest.raises(InputError, match="read error") as info:
-        magnify_raster(src, dst, tiny_model, quiet=True, chunk_size=512, retries=0)
+        magnify_raster(src, dst, tiny_model, chunk_size=512, retries=0)
     assert "corrupt.tif" in str(info.value)
     assert list_dir(run_dir) == []
     assert sha256_of(src) == before
@@ -203,7 +203,7 @@ def test_dtypes_and_nodata(make_raster, run_dir, tiny_model, dtype, nodata):
     img[~valid] = nodata
     src = make_raster(img, nodata=nodata)
     dst = run_dir / "o.tif"
-    magnify_raster(src, dst, tiny_model, quiet=True)
+    magnify_raster(src, dst, tiny_model)
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         assert d.dtypes[0] == dtype
         out = d.read(1)
@@ -225,7 +225,7 @@ def test_valid_pixel_next_to_nodata_value_is_nudged(make_raster, run_dir, bicubi
     img[:, 12:] = 200
     src = make_raster(img, nodata=0)
     dst = run_dir / "u8.tif"
-    magnify_raster(src, dst, bicubic_model, quiet=True)
+    magnify_raster(src, dst, bicubic_model)
     raw = bicubic_model.magnify(img.astype(np.float64))
     assert raw.min() < -0.5  # the cubic kernel's undershoot would round below 0
     out = _read(dst)[0][0]
@@ -243,8 +243,8 @@ def test_per_dataset_mask_and_no_leak(make_raster, run_dir, tiny_model):
     b = make_raster(other, name="b.tif", mask=valid)
     with rasterio.open(a) as s:
         assert s.mask_flag_enums[0] == [MaskFlags.per_dataset]
-    magnify_raster(a, run_dir / "a.tif", tiny_model, quiet=True, chunk_size=16)
-    magnify_raster(b, run_dir / "b.tif", tiny_model, quiet=True, chunk_size=16)
+    magnify_raster(a, run_dir / "a.tif", tiny_model, chunk_size=16)
+    magnify_raster(b, run_dir / "b.tif", tiny_model, chunk_size=16)
     da, ma, _, _ = _read(run_dir / "a.tif")
     db, mb, _, _ = _read(run_dir / "b.tif")
     with rasterio.open(a) as s:
@@ -263,7 +263,7 @@ def test_alpha_band_magnified_by_nearest(make_raster, run_dir, tiny_model):
     with rasterio.open(src) as s:
         assert s.colorinterp[3] == ColorInterp.alpha
     dst = run_dir / "rgba.tif"
-    res = magnify_raster(src, dst, [tiny_model] * 3, quiet=True)
+    res = magnify_raster(src, dst, [tiny_model] * 3)
     assert res.count == 4
     with rasterio.open(dst) as d:
         assert d.colorinterp[3] == ColorInterp.alpha
@@ -279,7 +279,7 @@ def test_non_epsg_wkt_crs_is_copied(make_raster, run_dir, tiny_model):
               "+datum=WGS84 +units=m +no_defs")
     src = make_raster(camera(20, 20).astype(np.uint8), crs=custom)
     dst = run_dir / "aea.tif"
-    magnify_raster(src, dst, tiny_model, quiet=True)
+    magnify_raster(src, dst, tiny_model)
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         assert s.crs.to_epsg() is None  # really a CRS without a code
         assert d.crs == s.crs
@@ -295,7 +295,7 @@ def test_gcp_only_georeferencing_scales_pixel_coordinates(make_raster, run_dir, 
     ]
     src = make_raster(camera(25, 30).astype(np.uint8), gcps=gcps, crs="EPSG:32618")
     dst = run_dir / "gcp.tif"
-    magnify_raster(src, dst, tiny_model, quiet=True)
+    magnify_raster(src, dst, tiny_model)
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         (g_src, c_src), (g_out, c_out) = s.gcps, d.gcps
         assert c_out == c_src
@@ -313,7 +313,7 @@ def test_band_metadata_carried(make_raster, run_dir, tiny_model):
         band_tags=[{"WAVELENGTH": "705", "STATISTICS_MEAN": "3"}, {"WAVELENGTH": "740"}],
     )
     dst = run_dir / "meta.tif"
-    magnify_raster(src, dst, tiny_model, quiet=True)
+    magnify_raster(src, dst, tiny_model)
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         assert d.descriptions == s.descriptions
         assert d.units == s.units
@@ -328,7 +328,7 @@ def test_provenance_tags(make_raster, run_dir, tiny_model):
     src = make_raster(camera(20, 20).astype(np.uint8), name="scene_20m.tif")
     dst = run_dir / "tags.tif"
     before = dt.datetime.now(dt.timezone.utc).replace(microsecond=0)
-    magnify_raster(src, dst, tiny_model, quiet=True)
+    magnify_raster(src, dst, tiny_model)
     with rasterio.open(dst) as d:
         tags = d.tags()
     assert tags["GEOSR_SYNTHESIZED"] == "yes"
@@ -348,13 +348,13 @@ def test_per_band_models_and_band_count_refused(make_raster, run_dir, tiny_model
     data = np.stack([camera(20, 20, 100 + 50 * k, 100) for k in range(3)]).astype(np.uint8)
     src = make_raster(data)
     with pytest.raises(ModelError, match="one per magnified band"):
-        magnify_raster(src, run_dir / "x.tif", [tiny_model, tiny_model], quiet=True)
-    res = magnify_raster(src, run_dir / "two.tif", [tiny_model, tiny_model], bands=[3, 1], quiet=True)
+        magnify_raster(src, run_dir / "x.tif", [tiny_model, tiny_model])
+    res = magnify_raster(src, run_dir / "two.tif", [tiny_model, tiny_model], bands=[3, 1])
     assert res.count == 2
     with rasterio.open(src) as s, rasterio.open(run_dir / "two.tif") as d:
         assert d.count == 2
         single = run_dir / "b3.tif"
-        magnify_raster(src, single, tiny_model, bands="3", quiet=True)
+        magnify_raster(src, single, tiny_model, bands="3")
         with rasterio.open(single) as one:
             assert np.array_equal(one.read(1), d.read(1))  # band order follows 'bands'
         assert s.count == 3
@@ -363,9 +363,9 @@ def test_per_band_models_and_band_count_refused(make_raster, run_dir, tiny_model
 def test_model_of_another_scale_refused(make_raster, run_dir, tiny_model):
     src = make_raster(camera(20, 20).astype(np.uint8))
     with pytest.raises(ModelError, match="scale 3"):
-        magnify_raster(src, run_dir / "x.tif", tiny_model, scale=3, quiet=True)
+        magnify_raster(src, run_dir / "x.tif", tiny_model, scale=3)
     with pytest.raises(ModelError, match="method"):
-        magnify_raster(src, run_dir / "x.tif", tiny_model, method="sparse", quiet=True)
+        magnify_raster(src, run_dir / "x.tif", tiny_model, method="sparse")
     assert list_dir(run_dir) == []
 
 
@@ -375,21 +375,21 @@ def test_model_file_path(make_raster, run_dir, tmp_path, tiny_model):
     src = make_raster(camera(20, 20).astype(np.uint8))
     path = tmp_path / "m.npz"
     save_models(path, [tiny_model])
-    magnify_raster(src, run_dir / "a.tif", str(path), quiet=True)
-    magnify_raster(src, run_dir / "b.tif", tiny_model, quiet=True)
+    magnify_raster(src, run_dir / "a.tif", str(path))
+    magnify_raster(src, run_dir / "b.tif", tiny_model)
     assert np.array_equal(_read(run_dir / "a.tif")[0], _read(run_dir / "b.tif")[0])
 
 
 # ---------------------------------------------------------- GeoTIFF and COG
 def test_creation_options(make_raster, run_dir, tiny_model):
     src = make_raster(camera(20, 20).astype(np.uint8))
-    magnify_raster(src, run_dir / "lzw.tif", tiny_model, quiet=True,
+    magnify_raster(src, run_dir / "lzw.tif", tiny_model,
                    creation_options=["COMPRESS=LZW", "BLOCKXSIZE=16", "BLOCKYSIZE=16"])
     with rasterio.open(run_dir / "lzw.tif") as d:
         assert d.compression.name == "lzw" and d.block_shapes[0] == (16, 16)
     for bad in (["COMPRESS"], ["=LZW"], ["COMPRESS=NOPE"], ["FOOBAR=1"]):
         with pytest.raises(ParameterError, match="creation_options"):
-            magnify_raster(src, run_dir / "bad.tif", tiny_model, quiet=True, creation_options=bad)
+            magnify_raster(src, run_dir / "bad.tif", tiny_model, creation_options=bad)
     assert list_dir(run_dir) == ["lzw.tif"]
 
 
@@ -400,7 +400,7 @@ def test_cog_is_valid(make_raster, run_dir, tiny_model):
     img[:, :20] = 0
     src = make_raster(img, nodata=0)
     dst = run_dir / "cog.tif"
-    magnify_raster(src, dst, tiny_model, cog=True, quiet=True, chunk_size=128)
+    magnify_raster(src, dst, tiny_model, cog=True, chunk_size=128)
     valid, errors, _ = cog_validate(str(dst))  # rio-cogeo's general-purpose COG validator
     assert valid, errors
     with rasterio.open(dst) as d:
@@ -416,25 +416,25 @@ def test_destination_rules(make_raster, run_dir, tiny_model, tmp_path):
     src = make_raster(camera(20, 20).astype(np.uint8))
     before = sha256_of(src)
     with pytest.raises(DestinationError, match="differ from the source"):
-        magnify_raster(src, src, tiny_model, quiet=True)
+        magnify_raster(src, src, tiny_model)
     link = tmp_path / "link.tif"
     link.symlink_to(src)
     with pytest.raises(DestinationError, match="differ from the source"):
-        magnify_raster(src, link, tiny_model, quiet=True, overwrite=True)
+        magnify_raster(src, link, tiny_model, overwrite=True)
     cwd = os.getcwd()
     try:
         os.chdir(run_dir)
         with pytest.raises(DestinationError, match="differ from the source"):
-            magnify_raster(src, os.path.relpath(src), tiny_model, quiet=True, overwrite=True)
+            magnify_raster(src, os.path.relpath(src), tiny_model, overwrite=True)
     finally:
         os.chdir(cwd)
     dst = run_dir / "o.tif"
-    magnify_raster(src, dst, tiny_model, quiet=True)
+    magnify_raster(src, dst, tiny_model)
     with pytest.raises(DestinationError, match="overwrite"):
-        magnify_raster(src, dst, tiny_model, quiet=True)
-    magnify_raster(src, dst, tiny_model, quiet=True, overwrite=True)
+        magnify_raster(src, dst, tiny_model)
+    magnify_raster(src, dst, tiny_model, overwrite=True)
     with pytest.raises(DestinationError, match="folder"):
-        magnify_raster(src, run_dir / "missing" / "o.tif", tiny_model, quiet=True)
+        magnify_raster(src, run_dir / "missing" / "o.tif", tiny_model)
     assert sha256_of(src) == before
     assert list_dir(run_dir) == ["o.tif"]
 
@@ -442,8 +442,8 @@ def test_destination_rules(make_raster, run_dir, tiny_model, tmp_path):
 def test_size_guard(make_raster, run_dir, tiny_model):
     src = make_raster(camera(20, 20).astype(np.uint8))
     with pytest.raises(InputError, match="max_output_bytes"):
-        magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True, max_output_bytes=1000)
-    magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True, max_output_bytes=1600)
+        magnify_raster(src, run_dir / "o.tif", tiny_model, max_output_bytes=1000)
+    magnify_raster(src, run_dir / "o.tif", tiny_model, max_output_bytes=1600)
 
 
 def test_failed_write_leaves_nothing(make_raster, run_dir, tiny_model, monkeypatch):
@@ -461,7 +461,7 @@ def test_failed_write_leaves_nothing(make_raster, run_dir, tiny_model, monkeypat
 
     monkeypatch.setattr(writing.OutputRaster, "write", failing)
     with pytest.raises(DestinationError, match="No space left"):
-        magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True, chunk_size=16)
+        magnify_raster(src, run_dir / "o.tif", tiny_model, chunk_size=16)
     assert list_dir(run_dir) == []
 
 
@@ -474,7 +474,7 @@ def test_stale_temporary_removed(make_raster, run_dir, tiny_model):
     # A pid that cannot be alive (above the kernel's pid_max).
     stale = stale.with_name(stale.name.replace(f"-{os.getpid()}-", "-4194399-"))
     stale.write_bytes(b"half a raster")
-    magnify_raster(src, dst, tiny_model, quiet=True)
+    magnify_raster(src, dst, tiny_model)
     assert list_dir(run_dir) == ["o.tif"]
 
 
@@ -484,7 +484,7 @@ def test_stac_sidecar(shared_file, run_dir, bicubic_model):
 
     src = shared_file("RGB.byte.tif")
     dst = run_dir / "rgb.tif"
-    res = magnify_raster(src, dst, bicubic_model, stac=True, quiet=True, chunk_size=512)
+    res = magnify_raster(src, dst, bicubic_model, stac=True, chunk_size=512)
     assert res.stac == run_dir / "rgb.json"
     item = json.loads(res.stac.read_text())
     assert item["type"] == "Feature" and item["stac_version"] == "1.1.0"
@@ -506,13 +506,19 @@ def test_stac_sidecar(shared_file, run_dir, bicubic_model):
     assert list_dir(run_dir) == ["rgb.json", "rgb.tif"]
 
 
-def test_progress_on_stderr_and_quiet(make_raster, run_dir, tiny_model, capsys):
+def test_progress_through_the_callback_and_nothing_on_stderr(make_raster, run_dir, tiny_model, capsys,
+                                                              caplog):
     src = make_raster(camera(40, 40).astype(np.uint8))
-    magnify_raster(src, run_dir / "a.tif", tiny_model, chunk_size=16)
-    err = capsys.readouterr().err
-    assert "magnify: 9/9 blocks (100%)" in err and "blocks/s" in err
-    magnify_raster(src, run_dir / "b.tif", tiny_model, chunk_size=16, quiet=True)
-    assert capsys.readouterr().err == ""
+    calls = []
+    with caplog.at_level("INFO", logger="geosr"):
+        magnify_raster(src, run_dir / "a.tif", tiny_model, chunk_size=16, cog=True,
+                       progress=lambda done, total: calls.append((done, total)))
+    assert calls == [(i, 9) for i in range(10)]  # (0, total) first, then one call per block
+    assert capsys.readouterr().err == ""  # the library prints nothing; the CLI renders
+    assert [(r.name, r.getMessage()) for r in caplog.records] == [
+        ("geosr.pipeline.magnify", "writing the Cloud Optimized GeoTIFF")]
+    with pytest.raises(ParameterError, match="progress"):
+        magnify_raster(src, run_dir / "b.tif", tiny_model, progress="bar")
 
 
 def test_bad_parameters(make_raster, run_dir, tiny_model):
@@ -530,20 +536,26 @@ def test_bad_parameters(make_raster, run_dir, tiny_model):
     ]
     for kw in cases:
         with pytest.raises(ParameterError):
-            magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True, **kw)
+            magnify_raster(src, run_dir / "o.tif", tiny_model, **kw)
     with pytest.raises(ParameterError, match="scale"):
-        magnify_raster(src, run_dir / "o.tif", quiet=True)
+        magnify_raster(src, run_dir / "o.tif")
     assert list_dir(run_dir) == []
 
 
-def test_self_training_on_the_scene(make_raster, run_dir):
+def test_self_training_on_the_scene(make_raster, run_dir, caplog):
     pytest.importorskip("geosr.core.model")
     src = make_raster(camera(120, 120).astype(np.uint8))
-    res = magnify_raster(
-        src, run_dir / "self.tif", scale=2, method="anchored", self_train=True, quiet=True,
-        training=dict(n_atoms=16, n_iter=1, neighbours=64, max_samples=1500, chunk_size=64),
-    )
+    train_calls = []
+    with caplog.at_level("INFO", logger="geosr"):
+        res = magnify_raster(
+            src, run_dir / "self.tif", scale=2, method="anchored", self_train=True,
+            training=dict(n_atoms=16, n_iter=1, neighbours=64, max_samples=1500, chunk_size=64,
+                          progress=lambda done, total: train_calls.append((done, total))),
+        )
     assert res.method == "anchored" and res.scale == 2
+    assert [r.getMessage() for r in caplog.records if r.name == "geosr.pipeline.train"] == [
+        "fitting the model for band1 on 1500 pairs"]
+    assert train_calls[0][0] == 0 and train_calls[-1][0] == train_calls[-1][1] > 0
     with rasterio.open(run_dir / "self.tif") as d:
         assert d.tags()["GEOSR_MODEL_SHA256"] == res.model_sha256 != "unknown"
 
@@ -554,7 +566,7 @@ def test_train_from_rasters_per_band_and_shared(make_raster, tmp_path):
     data = np.stack([camera(130, 140), camera(130, 140, 300, 300)]).astype(np.uint8)
     a = make_raster(data, name="ref_a.tif", descriptions=["red", "nir"])
     b = make_raster(data[:, ::-1].copy(), name="ref_b.tif")
-    params = dict(n_atoms=16, n_iter=1, neighbours=64, max_samples=1500, quiet=True)
+    params = dict(n_atoms=16, n_iter=1, neighbours=64, max_samples=1500)
     per_band = train_from_rasters([a, b], 2, chunk_size=50, **params)
     assert len(per_band) == 2 and [m.band_name_ for m in per_band] == ["red", "nir"]
     again = train_from_rasters([a, b], 2, chunk_size=50, **params)
@@ -574,7 +586,7 @@ def test_train_from_all_nodata_is_clear(shared_file):
     pytest.importorskip("geosr.core.model")
     src = shared_file("all-nodata.tif")
     with pytest.raises(InputError, match="no usable training patch"):
-        train_from_rasters([src], 2, n_atoms=16, n_iter=1, max_samples=500, quiet=True, chunk_size=512)
+        train_from_rasters([src], 2, n_atoms=16, n_iter=1, max_samples=500, chunk_size=512)
 
 
 def test_training_windows_match_whole_image_pairs(make_raster, tiny_model):
@@ -599,8 +611,8 @@ def test_training_windows_match_whole_image_pairs(make_raster, tiny_model):
 @pytest.mark.slow
 def test_processes_scheduler_equals_threads(make_raster, run_dir, tiny_model):
     src = make_raster(camera(50, 50).astype(np.uint8))
-    magnify_raster(src, run_dir / "t.tif", tiny_model, chunk_size=16, quiet=True)
-    magnify_raster(src, run_dir / "p.tif", tiny_model, chunk_size=16, quiet=True,
+    magnify_raster(src, run_dir / "t.tif", tiny_model, chunk_size=16)
+    magnify_raster(src, run_dir / "p.tif", tiny_model, chunk_size=16,
                    scheduler="processes", workers=2)
     assert np.array_equal(_read(run_dir / "t.tif")[0], _read(run_dir / "p.tif")[0])
 
@@ -611,8 +623,8 @@ def test_local_cluster_equals_threads(make_raster, run_dir, tiny_model):
     img = camera(45, 50).astype(np.float32)
     img[:4, :] = np.nan
     src = make_raster(img, nodata=float("nan"))
-    magnify_raster(src, run_dir / "t.tif", tiny_model, chunk_size=16, quiet=True)
-    res = magnify_raster(src, run_dir / "c.tif", tiny_model, chunk_size=16, quiet=True, workers=2)
+    magnify_raster(src, run_dir / "t.tif", tiny_model, chunk_size=16)
+    res = magnify_raster(src, run_dir / "c.tif", tiny_model, chunk_size=16, workers=2)
     assert "LocalCluster" in res.scheduler
     a, b = _read(run_dir / "t.tif")[0], _read(run_dir / "c.tif")[0]
     assert np.array_equal(np.isnan(a), np.isnan(b))
@@ -628,8 +640,13 @@ def test_interrupt_leaves_no_output(make_raster, run_dir, tmp_path, sig):
     src = make_raster(camera(400, 400).astype(np.uint8))
     before = sha256_of(src)
     script = tmp_path / "run.py"
+    # SIGTERM reaches the library as KeyboardInterrupt when the program says so,
+    # as geosr's command line does; the library itself installs no handler.
     script.write_text(textwrap.dedent(f"""
-        import numpy as np, sys, time
+        import numpy as np, signal, sys, time
+        def on_term(signum, frame):
+            raise KeyboardInterrupt("terminated by SIGTERM")
+        signal.signal(signal.SIGTERM, on_term)
         from skimage import data
         from geosr.core.model import CoupledDictionary
         from geosr.pipeline.magnify import magnify_raster
@@ -643,7 +660,7 @@ def test_interrupt_leaves_no_output(make_raster, run_dir, tmp_path, sig):
             print("block", flush=True)
             time.sleep(0.2)
         writing.OutputRaster.write = slow
-        magnify_raster({str(src)!r}, {str(run_dir / "o.tif")!r}, m, chunk_size=32, quiet=True)
+        magnify_raster({str(src)!r}, {str(run_dir / "o.tif")!r}, m, chunk_size=32)
     """))
     proc = subprocess.Popen([sys.executable, str(script)], stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
@@ -673,7 +690,7 @@ def test_damaged_inner_tile_fails_in_its_task_and_leaves_nothing(make_raster, ru
 
     inspect_source(src)  # still opens and its last block decodes
     with pytest.raises(InputError, match="read error in rows"):
-        magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True, chunk_size=16, retries=1)
+        magnify_raster(src, run_dir / "o.tif", tiny_model, chunk_size=16, retries=1)
     assert list_dir(run_dir) == []
 
 
@@ -696,7 +713,7 @@ def test_magnify_array_is_lazy_and_equals_the_written_raster(make_raster, run_di
     part = arr[:, 40:60, 30:50]
     assert len(dask.optimize(part)[0].__dask_graph__()) < len(arr.__dask_graph__())
     assert np.allclose(part.compute(), got[:, 40:60, 30:50], equal_nan=True)
-    magnify_raster(src, run_dir / "o.tif", tiny_model, chunk_size=16, quiet=True)
+    magnify_raster(src, run_dir / "o.tif", tiny_model, chunk_size=16)
     written = _read(run_dir / "o.tif")[0]
     assert np.array_equal(np.isnan(written), np.isnan(got))
     assert np.nanmax(np.abs(written - got)) <= 1e-3  # BLAS threading may reorder sums
@@ -704,7 +721,7 @@ def test_magnify_array_is_lazy_and_equals_the_written_raster(make_raster, run_di
 
 def test_one_pixel_raster(make_raster, run_dir, tiny_model):
     src = make_raster(np.array([[[37]]], np.uint8))
-    magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True)
+    magnify_raster(src, run_dir / "o.tif", tiny_model)
     out = _read(run_dir / "o.tif")[0]
     assert out.shape == (1, 2, 2) and (out == 37).all()  # a constant stays constant
 
@@ -716,7 +733,7 @@ def test_infinity_inside_valid_float_data(make_raster, run_dir, tiny_model):
     bad[12, 12] = np.inf
     bad[3, 20] = -np.inf
     src_b = make_raster(bad, name="b.tif")
-    magnify_raster(src_b, run_dir / "b.tif", tiny_model, quiet=True)
+    magnify_raster(src_b, run_dir / "b.tif", tiny_model)
     out = _read(run_dir / "b.tif")[0][0]
     hr_bad = np.repeat(np.repeat(~np.isfinite(bad), 2, 0), 2, 1)
     assert np.array_equal(np.isnan(out), hr_bad)  # invalid, and no infinity written
@@ -724,7 +741,7 @@ def test_infinity_inside_valid_float_data(make_raster, run_dir, tiny_model):
     # The infinities do not leak: the result is the core's with those pixels masked.
     ref = tiny_model.magnify(img, np.isfinite(bad))
     assert np.nanmax(np.abs(out - ref)) <= 1e-3
-    magnify_raster(src_a, run_dir / "a.tif", tiny_model, quiet=True)
+    magnify_raster(src_a, run_dir / "a.tif", tiny_model)
 
 
 def test_enormous_declared_size_refused_before_work(tmp_path, run_dir, tiny_model):
@@ -738,7 +755,7 @@ def test_enormous_declared_size_refused_before_work(tmp_path, run_dir, tiny_mode
 
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # KiB on Linux
     with pytest.raises(InputError, match="max_output_bytes"):
-        magnify_raster(path, run_dir / "o.tif", tiny_model, quiet=True)
+        magnify_raster(path, run_dir / "o.tif", tiny_model)
     # The high-water mark of this process did not move by a strip (400 MB).
     assert resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - peak < 100 * 1024
     assert list_dir(run_dir) == []
@@ -751,10 +768,9 @@ def test_consistency_and_ensemble_chunked_equal_whole(make_raster, run_dir, tiny
     halo = tiny_model.context_radius(consistency=True, masked=True)
     assert halo > tiny_model.context_radius(masked=True)  # the back-projection adds its own reach
     with pytest.raises(ParameterError, match=f"halo of {halo} pixels"):
-        magnify_raster(src, run_dir / "x.tif", tiny_model, consistency=True, chunk_size=halo - 1,
-                       quiet=True)
+        magnify_raster(src, run_dir / "x.tif", tiny_model, consistency=True, chunk_size=halo - 1)
     res = magnify_raster(src, run_dir / "o.tif", tiny_model, consistency=True, ensemble=True,
-                         chunk_size=halo, quiet=True)
+                         chunk_size=halo)
     assert res.halo == halo and res.blocks == 4
     out = _read(run_dir / "o.tif")[0][0]
     ref = tiny_model.magnify(img, consistency=True, ensemble=True)
@@ -779,7 +795,7 @@ def test_consistency_and_ensemble_chunked_equal_whole(make_raster, run_dir, tiny
 
 def test_no_residual_tags_without_consistency(make_raster, run_dir, tiny_model):
     src = make_raster(camera(30, 30).astype(np.uint8))
-    res = magnify_raster(src, run_dir / "o.tif", tiny_model, quiet=True)
+    res = magnify_raster(src, run_dir / "o.tif", tiny_model)
     assert res.consistency is None
     with rasterio.open(run_dir / "o.tif") as d:
         assert "GEOSR_CONSISTENCY_RMS" not in d.tags(1) and "GEOSR_CONSISTENCY_MET" not in d.tags()
@@ -790,7 +806,7 @@ def test_shipped_model_when_none_is_given(make_raster, run_dir):
     if not model_mod.default_model_path(2).is_file():
         pytest.skip("no shipped model for x2 in this checkout")
     src = make_raster(camera(24, 24).astype(np.uint8))
-    res = magnify_raster(src, run_dir / "o.tif", scale=2, quiet=True)
+    res = magnify_raster(src, run_dir / "o.tif", scale=2)
     shipped = model_mod.default_model(2)
     assert res.model_sha256 == shipped.sha256_ and res.method == str(shipped.method)
     with rasterio.open(run_dir / "o.tif") as d:
@@ -827,7 +843,7 @@ def test_spectral_guard_chunked_equals_whole(make_raster, run_dir, tiny_model, d
     assert np.nanmax(np.abs(expected - raw)) > 1e-3  # the guard does change pixels here
     for chunk in (max(MIN_CHUNK, tiny_model.context_radius(masked=True)), 21, 1024):
         dst = run_dir / f"g{chunk}.tif"
-        magnify_raster(src, dst, tiny_model, chunk_size=chunk, quiet=True)
+        magnify_raster(src, dst, tiny_model, chunk_size=chunk)
         out = _read(dst)[0]
         assert _guard_tag(dst) == "yes"
         assert (np.isnan(out) == np.isnan(expected)).all()
@@ -835,7 +851,7 @@ def test_spectral_guard_chunked_equals_whole(make_raster, run_dir, tiny_model, d
         arr = magnify_array(src, tiny_model, chunk_size=chunk).compute()
         assert np.nanmax(np.abs(arr - expected)) <= tol
     dst = run_dir / "off.tif"
-    magnify_raster(src, dst, tiny_model, chunk_size=21, quiet=True, spectral_guard=False)
+    magnify_raster(src, dst, tiny_model, chunk_size=21, spectral_guard=False)
     out = _read(dst)[0]
     assert _guard_tag(dst) == "no"
     assert np.nanmax(np.abs(out - raw)) <= tol
@@ -844,7 +860,7 @@ def test_spectral_guard_chunked_equals_whole(make_raster, run_dir, tiny_model, d
 def test_spectral_guard_skips_alpha_and_single_band(make_raster, run_dir, tiny_model):
     img = camera(30, 30).astype(np.uint8)
     dst = run_dir / "one.tif"
-    magnify_raster(make_raster(img, name="one_src.tif"), dst, tiny_model, quiet=True)
+    magnify_raster(make_raster(img, name="one_src.tif"), dst, tiny_model)
     assert _guard_tag(dst) == "no"  # one magnified band: nothing to guard
     expected = np.clip(np.rint(tiny_model.magnify(img.astype(np.float64))), 0, 255)
     assert np.abs(_read(dst)[0][0].astype(float) - expected).max() <= 1
@@ -853,7 +869,7 @@ def test_spectral_guard_skips_alpha_and_single_band(make_raster, run_dir, tiny_m
     alpha[20:, 20:] = 128
     src = make_raster(np.concatenate([rgb, alpha[None]]), photometric="RGB", alpha="YES")
     dst = run_dir / "rgba.tif"
-    magnify_raster(src, dst, tiny_model, quiet=True)
+    magnify_raster(src, dst, tiny_model)
     assert _guard_tag(dst) == "yes"
     # The alpha band is outside the guard: still exactly nearest neighbour.
     assert np.array_equal(_read(dst)[0][3], np.repeat(np.repeat(alpha, 2, 0), 2, 1))
@@ -864,7 +880,7 @@ def test_spectral_guard_gives_way_to_consistency(make_raster, run_dir, tiny_mode
     # would move it away again, so it is not applied (and the tag says so).
     img = np.stack([camera(40, 40), camera(40, 40)[::-1], camera(40, 40)[:, ::-1]]).astype(np.float64)
     src = make_raster(img)
-    magnify_raster(src, run_dir / "c.tif", tiny_model, consistency=True, quiet=True)
+    magnify_raster(src, run_dir / "c.tif", tiny_model, consistency=True)
     with rasterio.open(run_dir / "c.tif") as d:
         assert d.tags()["GEOSR_SPECTRAL_GUARD"] == "no" and d.tags()["GEOSR_CONSISTENCY_MET"] == "yes"
         out = d.read()

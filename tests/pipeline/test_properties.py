@@ -77,7 +77,7 @@ def test_output_contract(tmp_path, raster, scale, chunk, georef):
     dst = folder / "out.tif"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # no CRS / all nodata: warned, by design
-        res = magnify_raster(src, dst, model, chunk_size=chunk, quiet=True)
+        res = magnify_raster(src, dst, model, chunk_size=chunk)
     assert sorted(os.listdir(folder)) == ["out.tif", "src.tif"]  # no temporary left
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         assert (d.width, d.height, d.count) == (scale * cols, scale * rows, bands)
@@ -128,7 +128,7 @@ def test_one_pixel_of_every_dtype(tmp_path, dtype):
         ds.write(np.full((1, 1, 1), 42, dtype))
     for scale in (2, 3, 4):
         dst = tmp_path / f"o{scale}.tif"
-        magnify_raster(src, dst, BicubicContractModel(scale), quiet=True, chunk_size=MIN_CHUNK)
+        magnify_raster(src, dst, BicubicContractModel(scale), chunk_size=MIN_CHUNK)
         with rasterio.open(dst) as d:
             out = d.read()
         assert out.shape == (1, scale, scale) and out.dtype == np.dtype(dtype)
