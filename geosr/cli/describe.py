@@ -168,9 +168,9 @@ def describe(ctx, model, scale, as_json):
             f"got {'both' if model is not None else 'neither'}",
             ctx=ctx,
         )
-    load_models = options.library_function("geosr.modelfile", "load_models")
+    from ..modelfile import default_model_path, load_models
+
     if model is None:
-        default_model_path = options.library_function("geosr.modelfile", "default_model_path")
         path = default_model_path(scale)
         if not path.is_file():
             from ..errors import ModelError

@@ -3,7 +3,6 @@ command-line options win, the shipped example configs are valid."""
 
 from __future__ import annotations
 
-import inspect
 import sys
 from pathlib import Path
 
@@ -166,16 +165,11 @@ def test_check_value_key_value_forms():
 
 # --------------------------------------------------- through the command line
 @pytest.fixture
-def calls(monkeypatch):
-    """Record how the CLI calls magnify_raster (its wiring, not the library)."""
-    seen = []
-
-    def record(*args, **kwargs):
-        seen.append(dict(kwargs, model=args[2]))
-
-    record.__signature__ = inspect.signature(geosr.pipeline.magnify.magnify_raster)
-    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", record)
-    return seen
+def calls(recorder):
+    """Record how the CLI calls magnify_raster (its wiring, not the library):
+    the keywords, and the model as ``"model"``."""
+    return recorder(geosr.pipeline.magnify, "magnify_raster",
+                    keep=lambda args, kwargs: dict(kwargs, model=args[2]))
 
 
 def magnify(*args):
