@@ -42,7 +42,8 @@ import numpy as np
 from scipy import ndimage
 
 from ..errors import InputError, ParameterError
-from .resample import check_scale, degradation_margin, degradation_taps, degrade
+from .._validation import check_int, check_scale
+from .resample import degradation_margin, degradation_taps, degrade
 
 __all__ = [
     "psnr",
@@ -538,15 +539,7 @@ def q_index(reference, estimate, *, valid=None, block_size=8, per_band=False):
     ParameterError
         ``block_size`` not an integer >= 2.
     """
-    if (
-        isinstance(block_size, bool)
-        or not isinstance(block_size, (int, np.integer))
-        or block_size < 2
-    ):
-        raise ParameterError(
-            f"The 'block_size' parameter must be an integer of at least 2, got {block_size!r}"
-        )
-    k = int(block_size)
+    k = check_int(block_size, "block_size", 2)
     ref, est, mask = _prepare(reference, estimate, valid)
     rows, cols = ref.shape[1:]
     if rows < k or cols < k:

@@ -18,6 +18,7 @@ from functools import lru_cache
 
 import numpy as np
 
+from .._validation import check_scale, crop_to_multiple, working_dtype
 from ..enums import Degradation
 from ..errors import InputError, ParameterError
 
@@ -66,22 +67,6 @@ def default_sigma(scale):
     ``exp(-2 pi^2 sigma^2 / (2 s)^2) = 0.3``.
     """
     return float(scale) * math.sqrt(-2.0 * math.log(0.3)) / math.pi
-
-
-def check_scale(scale):
-    """Validate an integer scale factor in 2..8 and return it as ``int``."""
-    if isinstance(scale, bool) or not isinstance(scale, (int, np.integer)):
-        if isinstance(scale, (float, np.floating)) and float(scale).is_integer():
-            scale = int(scale)
-        else:
-            raise ParameterError(
-                f"The 'scale' parameter must be an integer from 2 to 8, got {scale!r}"
-            )
-    if not 2 <= int(scale) <= 8:
-        raise ParameterError(
-            f"The 'scale' parameter must be an integer from 2 to 8, got {scale!r}"
-        )
-    return int(scale)
 
 
 @lru_cache(maxsize=64)
@@ -164,7 +149,7 @@ def degrade_valid(padded, scale, model="bicubic", sigma=None, margin=None):
     if margin is None:
         margin = max(degradation_margin(scale, model, sigma))
     out = np.asarray(padded)
-    dtype = _work_dtype(out)
+    dtype = working_dtype(out)
     for axis in (-2, -1):
         n_out = (out.shape[axis] - 2 * margin) // scale
         acc = None
@@ -177,19 +162,6 @@ def degrade_valid(padded, scale, model="bicubic", sigma=None, margin=None):
         out = acc
         # The other axis still carries its margin; only this one is consumed.
     return out.astype(dtype, copy=False)
-
-
-def _work_dtype(a):
-    return np.dtype(np.float32) if a.dtype == np.float32 else np.dtype(np.float64)
-
-
-def crop_to_multiple(image, scale):
-    """Crop the last two axes to a multiple of ``scale`` (bottom and right)."""
-    scale = check_scale(scale)
-    image = np.asarray(image)
-    rows = image.shape[-2] - image.shape[-2] % scale
-    cols = image.shape[-1] - image.shape[-1] % scale
-    return image[..., :rows, :cols]
 
 
 def degrade(image, scale, model="bicubic", sigma=None):
@@ -228,7 +200,7 @@ def degrade(image, scale, model="bicubic", sigma=None):
         )
     if image.shape[-2] == 0 or image.shape[-1] == 0:
         raise InputError(f"The image must not be empty, got shape {image.shape}")
-    image = image.astype(_work_dtype(image), copy=False)
+    image = image.astype(working_dtype(image), copy=False)
     margin = max(degradation_margin(scale, model, sigma))
     pad = [(0, 0)] * (image.ndim - 2) + [(margin, margin)] * 2
     return degrade_valid(np.pad(image, pad, mode="symmetric"), scale, model, sigma, margin)
@@ -263,7 +235,7 @@ def upscale_valid(padded, scale, margin=UPSCALE_MARGIN):
     """
     w, first = _upscale_taps(scale)
     out = np.asarray(padded)
-    dtype = _work_dtype(out)
+    dtype = working_dtype(out)
     for axis in (-2, -1):
         n = out.shape[axis] - 2 * margin
         shape = list(out.shape)
@@ -301,7 +273,7 @@ def upscale_bicubic(image, scale):
     image = np.asarray(image)
     if image.ndim < 2 or image.shape[-2] == 0 or image.shape[-1] == 0:
         raise InputError(f"The image must be a non-empty 2-D array, got shape {image.shape}")
-    image = image.astype(_work_dtype(image), copy=False)
+    image = image.astype(working_dtype(image), copy=False)
     m = UPSCALE_MARGIN
     pad = [(0, 0)] * (image.ndim - 2) + [(m, m)] * 2
     return upscale_valid(np.pad(image, pad, mode="symmetric"), scale, m)
@@ -346,7 +318,7 @@ def rescale(image, factor):
         float32 for float32 input, float64 otherwise.
     """
     image = np.asarray(image)
-    dtype = _work_dtype(image)
+    dtype = working_dtype(image)
     if not (math.isfinite(factor) and factor > 0):
         raise ParameterError(f"The 'factor' parameter must be a positive number, got {factor!r}")
     if factor == 1:

@@ -25,7 +25,8 @@ import math
 
 import numpy as np
 
-from ..errors import InputError, ParameterError
+from .._validation import check_float
+from ..errors import InputError
 
 __all__ = ["guard_spectra", "DEFAULT_MAX_ANGLE", "DEFAULT_MIN_GAIN"]
 
@@ -85,10 +86,8 @@ def guard_spectra(output, base, valid=None, *, max_angle=DEFAULT_MAX_ANGLE,
             "The 'output' and 'base' arrays must have the same shape (bands, ...), got "
             f"{output.shape} and {base.shape}"
         )
-    if isinstance(max_angle, bool) or not (0 <= float(max_angle) < 90):
-        raise ParameterError(f"The 'max_angle' parameter must be in [0, 90) degrees, got {max_angle!r}")
-    if isinstance(min_gain, bool) or not (0 <= float(min_gain) <= 1):
-        raise ParameterError(f"The 'min_gain' parameter must be in [0, 1], got {min_gain!r}")
+    max_angle = check_float(max_angle, "max_angle", 0, 90, high_open=True)
+    min_gain = check_float(min_gain, "min_gain", 0, 1)
     dtype = output.dtype if output.dtype.kind == "f" else np.dtype(np.float64)
     result = output.astype(dtype, copy=True)
     if output.shape[0] < 2:
