@@ -12,15 +12,21 @@ import json
 import os
 import tempfile
 import warnings
+from collections.abc import Sequence
 from importlib import resources
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from . import _version
+from ._validation import check_scale
 from .core.features import FEATURE_RADIUS
-from .core.model import CoupledDictionary, model_sha256
-from .core.resample import check_scale
+from .core.model import CoupledDictionary
+from .core.params import check_params, header_params, model_sha256
 from .errors import ModelError, ParameterError
+
+if TYPE_CHECKING:
+    from importlib.resources.abc import Traversable
 
 __all__ = [
     "FORMAT_VERSION",
@@ -41,7 +47,11 @@ _ARRAY_NAMES = {
 
 
 
-def save_models(path, models, band_names=None):
+def save_models(
+    path: str | os.PathLike,
+    models: Sequence[CoupledDictionary],
+    band_names: Sequence[str] | None = None,
+) -> None:
     """Write one shared model or one model per band to an ``.npz`` file.
 
     The file holds the learned arrays and a JSON header with the format
@@ -60,7 +70,7 @@ def save_models(path, models, band_names=None):
     models = list(models)
     if not models:
         raise ParameterError("The 'models' parameter must hold at least one model, got none")
-    scales = {m._scale for m in models}
+    scales = {check_scale(m.scale) for m in models}
     if len(scales) != 1:
         raise ParameterError(f"The models must share one scale, got scales {sorted(scales)}")
     if band_names is not None and len(band_names) != len(models):
@@ -101,17 +111,26 @@ def save_models(path, models, band_names=None):
         raise
 
 
-def load_models(path):
+def load_models(path: str | os.PathLike) -> list[CoupledDictionary]:
     """Read a model file written by :func:`save_models`.
 
     Never unpickles; checks the format version, the shapes, finiteness and
     the sha256 of every model, and warns when the file was written by
     another geosr version.
 
+    Parameters
+    ----------
+    path : str or os.PathLike
+
     Returns
     -------
     list of CoupledDictionary
         One shared model, or one per band.
+
+    Raises
+    ------
+    ModelError
+        A missing, damaged, edited or newer file.
     """
     path = os.fspath(path)
     where = f"The model file {path!r}"
@@ -164,8 +183,8 @@ def _model_from_entry(entry, n, arrays):
     if unknown:
         raise ModelError(f"model {n} must have known parameters, got {sorted(unknown)}")
     model = CoupledDictionary(**params)
-    p = model._validate_params()
-    names = _ARRAY_NAMES[str(p["method"])]
+    p = check_params(model.get_params(deep=False))
+    names = _ARRAY_NAMES[str(p.method)]
     got = {}
     for name in names:
         key = f"m{n}_{name}"
@@ -175,9 +194,9 @@ def _model_from_entry(entry, n, arrays):
         if a.dtype.kind != "f" or not np.isfinite(a).all():
             raise ModelError(f"model {n} array {name!r} must hold finite floats, got {a.dtype} with non-finite values")
         got[name] = a.astype(np.float32, copy=False)
-    if model_sha256(got, model._header_params()) != entry.get("sha256"):
+    if model_sha256(got, header_params(model.get_params())) != entry.get("sha256"):
         raise ModelError(f"model {n} arrays must match the checksum in the header, got different bytes")
-    s = p["scale"]
+    s = p.scale
     window = (2 * FEATURE_RADIUS + 1) ** 2
     d = got["feature_kernel"].shape[0] if got["feature_kernel"].ndim == 2 else -1
     k = got["dictionary_low"].shape[1] if got["dictionary_low"].ndim == 2 else -1
@@ -206,14 +225,39 @@ def _model_from_entry(entry, n, arrays):
     return model
 
 
-def default_model_path(scale):
-    """Path of the model shipped in the package for a scale factor."""
+def default_model_path(scale: int) -> Traversable:
+    """Path of the model shipped in the package for a scale factor.
+
+    Parameters
+    ----------
+    scale : int
+        From 2 to 8 (models are shipped for 2, 3 and 4).
+
+    Returns
+    -------
+    importlib.resources.abc.Traversable
+        It may not exist (see :func:`default_model`).
+    """
     scale = check_scale(scale)
     return resources.files("geosr") / "models" / f"default-x{scale}.npz"
 
 
-def default_model(scale):
-    """The model shipped in the package for ``scale`` (2, 3 or 4)."""
+def default_model(scale: int) -> CoupledDictionary:
+    """The model shipped in the package for ``scale`` (2, 3 or 4).
+
+    Parameters
+    ----------
+    scale : int
+
+    Returns
+    -------
+    CoupledDictionary
+
+    Raises
+    ------
+    ModelError
+        No model is shipped for that scale, or its file is missing.
+    """
     path = default_model_path(scale)
     if not path.is_file():
         if check_scale(scale) in (2, 3, 4):
@@ -226,3 +270,4 @@ def default_model(scale):
             "train a model with 'geosr train' for other scales"
         )
     return CoupledDictionary.load(str(path))
+

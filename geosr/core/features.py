@@ -39,6 +39,8 @@ from .resample import UPSCALE_MARGIN, upscale_valid
 
 __all__ = [
     "FEATURE_RADIUS",
+    "PATCH_REACH",
+    "WINDOW_CENTRE",
     "derivative_filters",
     "raw_feature_kernel",
     "lowres_windows",
@@ -57,6 +59,9 @@ FEATURE_RADIUS = 4
 
 #: Centres needed around a window so that each of its cells has all nine patches.
 PATCH_REACH = 1
+
+#: Index of the centre pixel in a flattened low-res window (:func:`lowres_windows`).
+WINDOW_CENTRE = ((2 * FEATURE_RADIUS + 1) ** 2) // 2
 
 
 def derivative_filters(scale):
