@@ -14,12 +14,13 @@ import tempfile
 import warnings
 from collections.abc import Sequence
 from importlib import resources
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from . import _version
 from ._validation import check_scale
+from .cautions import CAUTION
 from .core.features import FEATURE_RADIUS
 from .core.model import CoupledDictionary
 from .core.params import check_params, header_params, model_sha256
@@ -33,6 +34,8 @@ __all__ = [
     "default_model",
     "default_model_path",
     "load_models",
+    "model_card",
+    "read_header",
     "save_models",
 ]
 
@@ -271,3 +274,69 @@ def default_model(scale: int) -> CoupledDictionary:
         )
     return CoupledDictionary.load(str(path))
 
+
+def read_header(path: str | os.PathLike) -> dict[str, Any]:
+    """The JSON header of a model file (format, versions, models), or {} if unreadable.
+
+    Read with ``allow_pickle=False``; no check is made (:func:`load_models`
+    makes them).
+    """
+    try:
+        with np.load(path, allow_pickle=False) as npz:
+            header = json.loads(str(npz["header"]))
+    except Exception:  # noqa: BLE001 - any unreadable file has no header to show
+        return {}
+    return header if isinstance(header, dict) else {}
+
+
+def model_card(
+    path: str | os.PathLike, models: Sequence[CoupledDictionary] | None = None
+) -> dict[str, Any]:
+    """The model card of a model file as a JSON-ready dict.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The model file.
+    models : list of CoupledDictionary, optional
+        What :func:`load_models` returned for it (read from ``path`` when
+        not given).
+
+    Returns
+    -------
+    dict
+        ``file``, ``size_bytes``, ``written_by`` and ``format_version``
+        (from the file's header), ``read_by`` (this geosr), ``scale``,
+        ``shared`` (one model for every band), ``models`` (per model: index,
+        band name, scale, method, parameters, training provenance, sha256)
+        and ``caution``.
+    """
+    if models is None:
+        models = load_models(path)
+    header = read_header(path)
+    entries = []
+    for n, m in enumerate(models):
+        params = m.get_params()
+        params = {k: (str(v) if hasattr(v, "value") else v) for k, v in params.items()}
+        entries.append(
+            {
+                "index": n,
+                "band_name": getattr(m, "band_name_", None),
+                "scale": int(params.get("scale")),
+                "method": str(params.get("method")),
+                "parameters": params,
+                "training": dict(getattr(m, "training_", {}) or {}),
+                "sha256": getattr(m, "sha256_", None),
+            }
+        )
+    return {
+        "file": os.fspath(path),
+        "size_bytes": os.path.getsize(path) if os.path.exists(path) else None,
+        "written_by": header.get("geosr_version"),
+        "format_version": header.get("format_version"),
+        "read_by": _version.__version__,
+        "scale": entries[0]["scale"] if entries else None,
+        "shared": len(entries) == 1,
+        "models": entries,
+        "caution": CAUTION,
+    }
