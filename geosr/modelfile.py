@@ -81,7 +81,7 @@ def save_models(
             f"The 'band_names' parameter must name each of the {len(models)} models, "
             f"got {len(band_names)} names"
         )
-    arrays = {}
+    arrays: dict[str, Any] = {}
     entries = []
     for n, model in enumerate(models):
         for name, value in model._arrays().items():
@@ -322,7 +322,7 @@ def model_card(
             {
                 "index": n,
                 "band_name": getattr(m, "band_name_", None),
-                "scale": int(params.get("scale")),
+                "scale": int(params["scale"]),
                 "method": str(params.get("method")),
                 "parameters": params,
                 "training": dict(getattr(m, "training_", {}) or {}),

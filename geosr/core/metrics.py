@@ -39,10 +39,11 @@ import math
 from typing import NamedTuple
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy import ndimage
 
-from ..errors import InputError, ParameterError
 from .._validation import check_int, check_scale
+from ..errors import InputError, ParameterError
 from .resample import degradation_margin, degradation_taps, degrade
 
 __all__ = [
@@ -203,7 +204,8 @@ def _overall_or_bands(values, per_band):
 # --------------------------------------------------------------------------
 
 
-def psnr(reference, estimate, *, data_range=None, valid=None, per_band=False):
+def psnr(reference: ArrayLike, estimate: ArrayLike, *, data_range: float | None = None,
+         valid: ArrayLike | None = None, per_band: bool = False) -> float | np.ndarray:
     """Peak signal-to-noise ratio in decibels.
 
     ``PSNR = 10 log10(R^2 / MSE)`` with ``R`` the data range and ``MSE`` the
@@ -259,7 +261,8 @@ def _psnr_from_mse(peak, mse):
 # --------------------------------------------------------------------------
 
 
-def ssim(reference, estimate, *, data_range=None, valid=None, per_band=False):
+def ssim(reference: ArrayLike, estimate: ArrayLike, *, data_range: float | None = None,
+         valid: ArrayLike | None = None, per_band: bool = False) -> float | np.ndarray:
     """Mean structural similarity index (Wang et al., IEEE TIP 2004).
 
     The parameters of the paper: a Gaussian window of sigma 1.5 (truncated at
@@ -345,7 +348,8 @@ def _ssim_map(x, y, c1, c2):
 # --------------------------------------------------------------------------
 
 
-def ergas(reference, estimate, scale, *, valid=None, per_band=False):
+def ergas(reference: ArrayLike, estimate: ArrayLike, scale: float, *, valid: ArrayLike | None = None,
+          per_band: bool = False) -> float | np.ndarray:
     """Relative dimensionless global error in synthesis (Wald 2002).
 
     ``ERGAS = 100 (h / l) sqrt(mean_k(RMSE_k^2 / mu_k^2))`` with ``h / l =
@@ -424,7 +428,7 @@ def _angle_map(ref, est, mask):
     return angle
 
 
-def sam_map(reference, estimate, *, valid=None):
+def sam_map(reference: ArrayLike, estimate: ArrayLike, *, valid: ArrayLike | None = None) -> np.ndarray:
     """Per-pixel spectral angle (Kruse et al., RSE 1993) in degrees.
 
     ``angle = arccos(<r, e> / (|r| |e|))`` between the reference spectrum
@@ -455,7 +459,7 @@ def sam_map(reference, estimate, *, valid=None):
     return _angle_map(ref, est, mask)
 
 
-def sam(reference, estimate, *, valid=None):
+def sam(reference: ArrayLike, estimate: ArrayLike, *, valid: ArrayLike | None = None) -> float:
     """Mean spectral angle mapper (Kruse et al., RSE 1993) in degrees.
 
     The per-pixel angle of :func:`sam_map` averaged over the pixels valid in
@@ -496,7 +500,8 @@ def sam(reference, estimate, *, valid=None):
 # --------------------------------------------------------------------------
 
 
-def q_index(reference, estimate, *, valid=None, block_size=8, per_band=False):
+def q_index(reference: ArrayLike, estimate: ArrayLike, *, valid: ArrayLike | None = None,
+            block_size: int = 8, per_band: bool = False) -> float | np.ndarray:
     """Universal image quality index Q (Wang & Bovik, IEEE SPL 2002).
 
     In each ``block_size x block_size`` window, sliding by one pixel as in the
@@ -606,8 +611,9 @@ class ConsistencyError(NamedTuple):
 
 
 def consistency_error(
-    low_res, output, scale, *, degradation="bicubic", sigma=None, valid=None
-):
+    low_res: ArrayLike, output: ArrayLike, scale: int, *, degradation: str = "bicubic",
+    sigma: float | None = None, valid: ArrayLike | None = None,
+) -> ConsistencyError:
     """How far degrading the magnified output is from the low-res input.
 
     Computes ``d = degrade(output, scale, degradation, sigma) - low_res``

@@ -39,7 +39,13 @@ from ..errors import InputError, ModelError, NotFittedError
 from . import synthesis
 from .learn import learn_from_pairs
 from .pairs import PairSample, collect_pairs, training_halo
-from .params import PARAMETER_NAMES, ModelParams, check_params, header_params, model_sha256
+from .params import (
+    PARAMETER_NAMES,
+    ModelParams,
+    check_params,
+    header_params,
+    model_sha256,
+)
 
 __all__ = [
     "CoupledDictionary",

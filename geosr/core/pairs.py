@@ -20,7 +20,13 @@ from ..enums import Degradation
 from ..errors import InputError
 from .features import FEATURE_RADIUS, detail_patches, lowres_windows, raw_feature_kernel
 from .params import ModelParams
-from .resample import UPSCALE_MARGIN, degradation_margin, degrade_valid, rescale, upscale_valid
+from .resample import (
+    UPSCALE_MARGIN,
+    degradation_margin,
+    degrade_valid,
+    rescale,
+    upscale_valid,
+)
 
 __all__ = ["PairSample", "collect_pairs", "subset_tiles", "training_halo", "TILE_CELLS"]
 
@@ -202,7 +208,8 @@ def _pairs_from_block(params, block, halo, valid, budget, rng):
 
 def _bad_centres(valid, s, degradation: Degradation, sigma, margin_cells, rows, cols):
     """Cells whose feature window reads a low-res cell degraded from an invalid pixel."""
-    from scipy.ndimage import maximum_filter  # not at import: it slows the core's import down
+    # Imported here, not at import: it slows the core's import down.
+    from scipy.ndimage import maximum_filter
 
     r = FEATURE_RADIUS
     left, right = degradation_margin(s, degradation, sigma)

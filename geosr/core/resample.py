@@ -15,8 +15,10 @@ from __future__ import annotations
 
 import math
 from functools import lru_cache
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .._validation import check_scale, crop_to_multiple, working_dtype
 from ..enums import Degradation
@@ -36,7 +38,7 @@ __all__ = [
 KEYS_A = -0.5
 
 
-def keys_kernel(x, a=KEYS_A):
+def keys_kernel(x: ArrayLike, a: float = KEYS_A) -> np.ndarray:
     """Cubic convolution kernel of Keys (IEEE TASSP 29(6), 1981).
 
     Parameters
@@ -58,7 +60,7 @@ def keys_kernel(x, a=KEYS_A):
     return np.where(x <= 1.0, near, np.where(x < 2.0, far, 0.0))
 
 
-def default_sigma(scale):
+def default_sigma(scale: int) -> float:
     """Default Gaussian PSF width in high-res pixels for a scale factor.
 
     A Gaussian whose modulation transfer at the low-res Nyquist frequency is
@@ -97,7 +99,9 @@ def _degradation_taps(scale, model, sigma):
     return w / w.sum(), int(offsets[first])
 
 
-def degradation_taps(scale, model="bicubic", sigma=None):
+def degradation_taps(
+    scale: int, model: str = "bicubic", sigma: float | None = None
+) -> tuple[np.ndarray, int]:
     """Return ``(weights, start)`` of the separable degradation filter.
 
     Low-res pixel ``i`` is ``sum_t weights[t] * x[scale*i + start + t]``
@@ -127,7 +131,7 @@ def _check_sigma(scale, model, sigma):
     return sigma
 
 
-def degradation_margin(scale, model="bicubic", sigma=None):
+def degradation_margin(scale: int, model: str = "bicubic", sigma: float | None = None) -> tuple[int, int]:
     """High-res pixels of context the degradation needs on each side of a block.
 
     Returns ``(left, right)``: pixel ``s*i`` needs ``left`` pixels before it
@@ -139,7 +143,8 @@ def degradation_margin(scale, model="bicubic", sigma=None):
     return left, right
 
 
-def degrade_valid(padded, scale, model="bicubic", sigma=None, margin=None):
+def degrade_valid(padded: ArrayLike, scale: int, model: str = "bicubic", sigma: float | None = None,
+                  margin: int | None = None) -> np.ndarray:
     """Degrade an array that carries ``margin`` high-res pixels of context.
 
     ``padded`` has shape ``(s*h + 2*margin, s*w + 2*margin)`` (leading axes
@@ -152,7 +157,7 @@ def degrade_valid(padded, scale, model="bicubic", sigma=None, margin=None):
     dtype = working_dtype(out)
     for axis in (-2, -1):
         n_out = (out.shape[axis] - 2 * margin) // scale
-        acc = None
+        acc: Any = None
         for t, wt in enumerate(w):
             first = margin + start + t
             sl = [slice(None)] * out.ndim
@@ -164,7 +169,7 @@ def degrade_valid(padded, scale, model="bicubic", sigma=None, margin=None):
     return out.astype(dtype, copy=False)
 
 
-def degrade(image, scale, model="bicubic", sigma=None):
+def degrade(image: ArrayLike, scale: int, model: str = "bicubic", sigma: float | None = None) -> np.ndarray:
     """Degrade a high-res image to low resolution.
 
     Parameters
@@ -227,7 +232,7 @@ def _upscale_taps(scale):
 UPSCALE_MARGIN = 2
 
 
-def upscale_valid(padded, scale, margin=UPSCALE_MARGIN):
+def upscale_valid(padded: ArrayLike, scale: int, margin: int = UPSCALE_MARGIN) -> np.ndarray:
     """Bicubic interpolation of the interior of an array with ``margin`` of context.
 
     ``padded`` has shape ``(h + 2*margin, w + 2*margin)`` on its last two
@@ -256,7 +261,7 @@ def upscale_valid(padded, scale, margin=UPSCALE_MARGIN):
     return out
 
 
-def upscale_bicubic(image, scale):
+def upscale_bicubic(image: ArrayLike, scale: int) -> np.ndarray:
     """Bicubic interpolation by an integer factor, pixel centres aligned.
 
     Parameters
@@ -298,7 +303,7 @@ def _rescale_matrix(n_in, n_out, factor):
     return m
 
 
-def rescale(image, factor):
+def rescale(image: ArrayLike, factor: float) -> np.ndarray:
     """Resample a 2-D image by a real factor with an antialiased Keys kernel.
 
     Used to make extra training copies of a reference at slightly smaller

@@ -61,9 +61,10 @@ import functools
 import hashlib
 import os
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from numbers import Real
+from typing import Any
 
 import numba
 import numpy as np
@@ -71,6 +72,7 @@ import scipy.sparse
 from llvmlite import ir as llvm_ir
 from numba import types
 from numba.extending import intrinsic
+from numpy.typing import ArrayLike
 from threadpoolctl import ThreadpoolController
 
 from .._validation import check_int, check_random_state, cpu_count, working_dtype
@@ -129,7 +131,7 @@ UNIT_NORM_TOL = 1e-4
 # validation helpers
 
 
-def _as_real_array(value, name, error=ParameterError):
+def _as_real_array(value, name, error=ParameterError) -> np.ndarray:
     try:
         arr = np.asarray(value)
     except Exception as exc:  # noqa: BLE001 - anything unconvertible
@@ -141,7 +143,7 @@ def _as_real_array(value, name, error=ParameterError):
     return arr
 
 
-def _check_2d(arr, name, error=ParameterError):
+def _check_2d(arr, name, error=ParameterError) -> np.ndarray:
     if arr.ndim != 2:
         raise error(f"The {name!r} parameter must be a 2-D array, got shape {arr.shape}")
     return arr
@@ -169,7 +171,7 @@ def _check_n_threads(n_threads):
     return cpu_count() if n_threads is None else check_int(n_threads, "n_threads", 1)
 
 
-def _check_dictionary(D, name="D"):
+def _check_dictionary(D, name="D") -> np.ndarray:
     D = _check_2d(_as_real_array(D, name), name)
     if D.shape[0] < 1 or D.shape[1] < 1:
         raise ParameterError(f"The {name!r} parameter must have at least one row and one column, got shape {D.shape}")
@@ -188,7 +190,7 @@ def _check_unit_columns(D, name="D"):
         )
 
 
-def _check_signals(X, n_features, name="X"):
+def _check_signals(X, n_features, name="X") -> np.ndarray:
     X = _as_real_array(X, name, InputError)
     if X.ndim != 2:
         raise InputError(f"The {name!r} parameter must be a 2-D array (n_features, n_signals), got shape {X.shape}")
@@ -555,7 +557,7 @@ def _cached_gram(D):
     return G
 
 
-def _prepare(D, X, n_nonzero, tol, gram, n_threads):
+def _prepare(D, X, n_nonzero, tol, gram, n_threads) -> tuple[np.ndarray, np.ndarray, int, float | None, np.ndarray, int]:
     D = _check_dictionary(D)
     n_features, n_atoms = D.shape
     X = _check_signals(X, n_features)
@@ -569,7 +571,8 @@ def _prepare(D, X, n_nonzero, tol, gram, n_threads):
     return D, X, n_nonzero, tol, G, n_threads
 
 
-def omp_codes(D, X, n_nonzero, *, tol=None, gram=None, n_threads=None):
+def omp_codes(D: ArrayLike, X: ArrayLike, n_nonzero: int, *, tol: float | None = None,
+              gram: ArrayLike | None = None, n_threads: int | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Sparse codes of the columns of ``X`` over ``D`` in compact form.
 
     Parameters
@@ -631,7 +634,8 @@ def _codes_to_csc(idx, coef, cnt, n_atoms):
     return out
 
 
-def batch_omp(D, X, n_nonzero, *, tol=None, n_threads=None):
+def batch_omp(D: ArrayLike, X: ArrayLike, n_nonzero: int, *, tol: float | None = None,
+              n_threads: int | None = None) -> scipy.sparse.csc_matrix:
     """Orthogonal matching pursuit of many signals over one dictionary.
 
     Parameters
@@ -667,7 +671,7 @@ def batch_omp(D, X, n_nonzero, *, tol=None, n_threads=None):
     return _codes_to_csc(idx, coef, cnt, D.shape[1])
 
 
-def reconstruct(D, indices, coefs):
+def reconstruct(D: ArrayLike, indices: ArrayLike, coefs: ArrayLike) -> np.ndarray:
     """Signals from compact codes: ``sum_t D[:, indices[:, t]] * coefs[:, t]``.
 
     Parameters
@@ -863,7 +867,11 @@ def _replace_atoms(Dt, Xt, norms, err, usage, limit):
     return n_unused, n_coherent
 
 
-def ksvd(X, n_atoms, n_nonzero, n_iter, *, init=None, random_state=None, callback=None, n_threads=None):
+def ksvd(
+    X: ArrayLike, n_atoms: int, n_nonzero: int, n_iter: int, *, init: ArrayLike | None = None,
+    random_state: Any = None, callback: Callable[[int, np.ndarray, dict], Any] | None = None,
+    n_threads: int | None = None,
+) -> tuple[np.ndarray, dict[str, Any]]:
     """Learn a dictionary by approximate K-SVD over batch OMP.
 
     Parameters
@@ -948,7 +956,7 @@ def ksvd(X, n_atoms, n_nonzero, n_iter, *, init=None, random_state=None, callbac
                 f"The 'X' parameter must hold at least n_atoms = {n_atoms} non-zero signals, "
                 f"got {int(np.count_nonzero(norms > 0))}"
             )
-    info = {"n_iter": 0, "rms": [], "n_replaced": [], "n_unused": [], "n_coherent": []}
+    info: dict[str, Any] = {"n_iter": 0, "rms": [], "n_replaced": [], "n_unused": [], "n_coherent": []}
     n_entries = float(n_features) * n_signals
     for it in range(1, n_iter + 1):
         D = np.ascontiguousarray(Dt.T)
@@ -983,20 +991,20 @@ class KSVD:
         As :func:`ksvd`.
     """
 
-    def __init__(self, n_atoms=1000, n_nonzero=3, n_iter=20, random_state=None):
+    def __init__(self, n_atoms: int = 1000, n_nonzero: int = 3, n_iter: int = 20, random_state: Any = None) -> None:
         self.n_atoms = n_atoms
         self.n_nonzero = n_nonzero
         self.n_iter = n_iter
         self.random_state = random_state
 
-    def fit(self, X, init=None):
+    def fit(self, X: ArrayLike, init: ArrayLike | None = None) -> KSVD:
         """Learn the dictionary from ``X`` (n_features, n_signals); returns self."""
         self.components_, self.info_ = ksvd(
             X, self.n_atoms, self.n_nonzero, self.n_iter, init=init, random_state=self.random_state
         )
         return self
 
-    def transform(self, X, tol=None):
+    def transform(self, X: ArrayLike, tol: float | None = None) -> scipy.sparse.csc_matrix:
         """Sparse codes of ``X`` (n_features, n_signals) as CSC (n_atoms, n_signals)."""
         if not hasattr(self, "components_"):
             raise NotFittedError("This KSVD instance is not fitted yet; call fit first")

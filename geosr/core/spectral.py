@@ -24,6 +24,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .._validation import check_float
 from ..errors import InputError
@@ -40,8 +41,8 @@ DEFAULT_MAX_ANGLE = 2.0
 DEFAULT_MIN_GAIN = 0.5
 
 
-def guard_spectra(output, base, valid=None, *, max_angle=DEFAULT_MAX_ANGLE,
-                  min_gain=DEFAULT_MIN_GAIN):
+def guard_spectra(output: ArrayLike, base: ArrayLike, valid: ArrayLike | None = None, *,
+                  max_angle: float = DEFAULT_MAX_ANGLE, min_gain: float = DEFAULT_MIN_GAIN) -> np.ndarray:
     """Limit how far per-band detail turns and darkens each pixel's spectrum.
 
     For every pixel with interpolated spectrum ``b`` (norm ``|b|``, direction

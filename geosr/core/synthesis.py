@@ -15,6 +15,7 @@ and the learned arrays by their model-file names (``feature_kernel``,
 from __future__ import annotations
 
 from collections.abc import Mapping
+from typing import Any
 
 import numpy as np
 
@@ -68,7 +69,7 @@ def context_radius(params: ModelParams, consistency: bool = False, masked: bool 
     return radius
 
 
-def check_image(image: object, name: str) -> np.ndarray:
+def check_image(image: Any, name: str) -> np.ndarray:
     """A non-empty 2-D real array, or InputError naming ``name``."""
     image = np.asarray(image)
     if image.ndim != 2:
@@ -80,7 +81,7 @@ def check_image(image: object, name: str) -> np.ndarray:
     return image
 
 
-def valid_mask(image: np.ndarray, valid: object | None) -> np.ndarray | None:
+def valid_mask(image: np.ndarray, valid: Any) -> np.ndarray | None:
     """The measured pixels: ``valid`` and finite, or None when every pixel counts."""
     finite = np.isfinite(image) if np.issubdtype(image.dtype, np.floating) else None
     if valid is not None:
@@ -106,7 +107,7 @@ def _pad_whole(params, image, valid, consistency):
     return block, r, vblock, valid
 
 
-def magnify(params: ModelParams, arrays: Arrays, image: object, valid: object | None = None, *,
+def magnify(params: ModelParams, arrays: Arrays, image: Any, valid: Any = None, *,
             consistency: bool = False, ensemble: bool = False) -> np.ndarray:
     """Magnify a whole 2-D image (see ``CoupledDictionary.magnify``)."""
     block, r, vblock, valid = _pad_whole(params, image, valid, consistency)
@@ -118,7 +119,7 @@ def magnify(params: ModelParams, arrays: Arrays, image: object, valid: object | 
     return out
 
 
-def interpolate(params: ModelParams, image: object, valid: object | None = None) -> np.ndarray:
+def interpolate(params: ModelParams, image: Any, valid: Any = None) -> np.ndarray:
     """The interpolation that :func:`magnify` adds its detail to."""
     block, r, vblock, _ = _pad_whole(params, image, valid, False)
     return interpolate_block(params, block, r, vblock)
@@ -159,7 +160,7 @@ def _prepare_block(params, block, halo, valid, consistency):
     return block, need, dtype, h, w
 
 
-def interpolate_block(params: ModelParams, block: object, halo: int, valid: object | None = None, *,
+def interpolate_block(params: ModelParams, block: Any, halo: int, valid: Any = None, *,
                       consistency: bool = False) -> np.ndarray:
     """The interpolation that :func:`magnify_block` adds its detail to."""
     block, need, dtype, h, w = _prepare_block(params, block, halo, valid, consistency)
@@ -171,8 +172,8 @@ def interpolate_block(params: ModelParams, block: object, halo: int, valid: obje
     return upscale_valid(block[crop : block.shape[0] - crop, crop : block.shape[1] - crop], s, m)
 
 
-def magnify_block(params: ModelParams, arrays: Arrays, block: object, halo: int,
-                  valid: object | None = None, *, consistency: bool = False,
+def magnify_block(params: ModelParams, arrays: Arrays, block: Any, halo: int,
+                  valid: Any = None, *, consistency: bool = False,
                   ensemble: bool = False, return_residual: bool = False):
     """Magnify one window that carries its own context (see ``CoupledDictionary.magnify_block``)."""
     if return_residual and not consistency:
