@@ -267,7 +267,7 @@ def test_random_state_from_random_state():
     a = v.check_random_state(np.random.RandomState(5))
     b = v.check_random_state(np.random.RandomState(5))
     np.testing.assert_array_equal(_draws(a), _draws(b))
-    # seeded with four 31-bit draws of the RandomState (geosr.sparse._rng)
+    # seeded with four 31-bit draws of the RandomState (as geosr.core.sparse always has)
     ref = np.random.default_rng(np.random.RandomState(5).randint(0, 2**31 - 1, size=4))
     np.testing.assert_array_equal(_draws(v.check_random_state(np.random.RandomState(5))), _draws(ref))
     rs = np.random.RandomState(5)
