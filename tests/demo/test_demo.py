@@ -13,7 +13,7 @@ from affine import Affine
 from click.testing import CliRunner
 from pyproj import CRS
 
-from geosr.demo import scene as demo
+import geosr.demo as demo
 from geosr.cli.main import geosr as cli
 from geosr.errors import ModelError, ParameterError
 
