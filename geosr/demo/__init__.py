@@ -7,7 +7,15 @@ detail crop by nearest neighbour, bicubic, geosr and the truth side by side
 (:mod:`geosr.demo.quicklook`).
 """
 
-from .landcover import BANDS, LANDCOVER, NODATA, REFLECTANCE_SCALE, SPECTRA, VEGETATION, WATER
+from .landcover import (
+    BANDS,
+    LANDCOVER,
+    NODATA,
+    REFLECTANCE_SCALE,
+    SPECTRA,
+    VEGETATION,
+    WATER,
+)
 from .quicklook import CAPTION, detail_window, quicklook_figure, rmse, write_quicklook
 from .run import run_demo
 from .scene import (
@@ -24,25 +32,25 @@ from .scene import (
 
 __all__ = [
     "BANDS",
-    "LANDCOVER",
-    "VEGETATION",
-    "WATER",
-    "SPECTRA",
-    "REFLECTANCE_SCALE",
-    "NODATA",
+    "CAPTION",
     "CRS",
+    "LANDCOVER",
+    "NODATA",
     "PIXEL",
+    "REFLECTANCE_SCALE",
     "SCALE",
     "SIZE",
+    "SPECTRA",
+    "VEGETATION",
+    "WATER",
     "DemoScene",
-    "make_scene",
     "degrade_scene",
-    "write_scene",
-    "read_scene",
     "detail_window",
-    "rmse",
+    "make_scene",
     "quicklook_figure",
-    "write_quicklook",
+    "read_scene",
+    "rmse",
     "run_demo",
-    "CAPTION",
+    "write_quicklook",
+    "write_scene",
 ]

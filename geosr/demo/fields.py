@@ -13,7 +13,7 @@ import numpy as np
 
 from .landcover import CODE
 
-__all__ = ["Parcels", "paint_parcels", "paint_tracks", "CROPS", "CROP_SHARES"]
+__all__ = ["CROPS", "CROP_SHARES", "Parcels", "paint_parcels", "paint_tracks"]
 
 #: What a field grows ("orchard" is grass under rows of trees), and how often.
 CROPS = ("green-crop", "ripe-cereal", "bare-soil", "grass", "orchard")

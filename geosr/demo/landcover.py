@@ -4,13 +4,13 @@ from __future__ import annotations
 
 __all__ = [
     "BANDS",
-    "LANDCOVER",
     "CODE",
+    "LANDCOVER",
+    "NODATA",
+    "REFLECTANCE_SCALE",
+    "SPECTRA",
     "VEGETATION",
     "WATER",
-    "SPECTRA",
-    "REFLECTANCE_SCALE",
-    "NODATA",
     "codes",
 ]
 

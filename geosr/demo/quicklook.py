@@ -7,13 +7,18 @@ attached, never through pyplot, so no global backend state is touched.
 from __future__ import annotations
 
 import os
+from collections.abc import Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from ..errors import InputError
 from .scene import SCALE
 
-__all__ = ["CAPTION", "detail_window", "rmse", "quicklook_figure", "write_quicklook"]
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
+
+__all__ = ["CAPTION", "detail_window", "quicklook_figure", "rmse", "write_quicklook"]
 
 CAPTION = (
     "Demo scene: procedurally generated, no real place and no real data. "
@@ -27,7 +32,7 @@ _ROWS = {
 }
 
 
-def detail_window(scene_shape, landmarks, size=192, scale=SCALE):
+def detail_window(scene_shape: tuple, landmarks: dict, size: int = 192, scale: int = SCALE) -> tuple[slice, slice]:
     """The detail crop of the quick look on the truth grid.
 
     Centred between the bridge and the nearest farmstead, clipped to the
@@ -69,7 +74,7 @@ def _composite(image, bands, lo, hi):
     return np.clip(np.nan_to_num(rgb, nan=0.0), 0.0, 1.0)
 
 
-def rmse(reference, estimate, valid=None):
+def rmse(reference: np.ndarray, estimate: np.ndarray, valid: np.ndarray | None = None) -> float:
     """Root mean square difference over valid pixels of all bands.
 
     Parameters
@@ -102,7 +107,7 @@ def _draw_panel(column, label, image, ref, valid, rows, limits):
         head = f"{label}\nreference"
     else:
         head = f"{label}\nRMSE {rmse(ref, image, valid):.4f}"
-    for i, (row_label, bands) in enumerate(rows):
+    for i, (_, bands) in enumerate(rows):
         ax = column[i]
         ax.imshow(_composite(image, bands, *limits[bands]), interpolation="nearest")
         ax.set_xticks([])
@@ -111,8 +116,16 @@ def _draw_panel(column, label, image, ref, valid, rows, limits):
             ax.set_title(head, fontsize=11)
 
 
-def quicklook_figure(panels, *, reference=None, valid=None, caption=CAPTION, title=None,
-                     rgb=(2, 1, 0), cir=(3, 2, 1)):
+def quicklook_figure(
+    panels: Sequence[tuple[str, np.ndarray]],
+    *,
+    reference: np.ndarray | None = None,
+    valid: np.ndarray | None = None,
+    caption: str = CAPTION,
+    title: str | None = None,
+    rgb: tuple[int, int, int] = (2, 1, 0),
+    cir: tuple[int, int, int] = (3, 2, 1),
+) -> Figure:
     """The quick-look figure: one column per panel, true colour and colour infrared.
 
     Parameters
@@ -156,7 +169,7 @@ def quicklook_figure(panels, *, reference=None, valid=None, caption=CAPTION, tit
     return fig
 
 
-def write_quicklook(path, panels, **kwargs):
+def write_quicklook(path: str | os.PathLike, panels: Sequence[tuple[str, np.ndarray]], **kwargs) -> str:
     """Write :func:`quicklook_figure` to a PNG file and return its path."""
     fig = quicklook_figure(panels, **kwargs)
     fig.savefig(path, format="png")

@@ -16,7 +16,7 @@ _SHADOW = (0.55, 0.5, 0.45, 0.4)
 
 def cast_shadows(grid, layers, buildings, canopy_height, crowns):
     """Shadows of buildings and tall crowns, cast to the south-east (sun in the north-west)."""
-    sh = int(round(2 * grid.k)) or 1
+    sh = round(2 * grid.k) or 1
     tall = np.where(buildings, 4.0, canopy_height)
     shadow = np.zeros(grid.shape, dtype=bool)
     shadow[sh:, sh:] = tall[:-sh, :-sh] > 0.5

@@ -5,13 +5,23 @@ from __future__ import annotations
 import logging
 import os
 import time
+from collections.abc import Callable
 
 import numpy as np
 
 from ..errors import ModelError, ParameterError, RunError
 from .landcover import REFLECTANCE_SCALE
 from .quicklook import detail_window, write_quicklook
-from .scene import PIXEL, SCALE, SIZE, degrade_scene, fill_nodata, make_scene, read_scene, write_scene
+from .scene import (
+    PIXEL,
+    SCALE,
+    SIZE,
+    degrade_scene,
+    fill_nodata,
+    make_scene,
+    read_scene,
+    write_scene,
+)
 
 __all__ = ["run_demo"]
 
@@ -87,7 +97,15 @@ def _write_comparison(path, truth, coarse, output_path):
     )
 
 
-def run_demo(outdir, *, seed=0, size=SIZE, model=None, quiet=False, echo=None):
+def run_demo(
+    outdir: str | os.PathLike,
+    *,
+    seed: int = 0,
+    size: int = SIZE,
+    model: object = None,
+    quiet: bool = False,
+    echo: Callable[[str], object] | None = None,
+) -> dict:
     """Generate the demo scene, magnify its coarse version x3, write a quick look.
 
     Writes into ``outdir`` (created if needed; earlier demo files there are

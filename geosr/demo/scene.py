@@ -37,11 +37,11 @@ __all__ = [
     "SCALE",
     "SIZE",
     "DemoScene",
-    "make_scene",
     "degrade_scene",
     "fill_nodata",
-    "write_scene",
+    "make_scene",
     "read_scene",
+    "write_scene",
 ]
 
 #: UTM zone 33 north on WGS 84; the coordinates below are invented.
@@ -118,7 +118,7 @@ def _paint_landscape(rng, grid):
     return layers, shading, shadow, landmarks
 
 
-def make_scene(size=SIZE, seed=0):
+def make_scene(size: int = SIZE, seed: int | None = 0) -> DemoScene:
     """Generate the invented river valley.
 
     Parameters
@@ -146,7 +146,7 @@ def make_scene(size=SIZE, seed=0):
     return DemoScene(data, valid, layers.landcover, transform, CRS, PIXEL, landmarks)
 
 
-def degrade_scene(scene, scale=SCALE):
+def degrade_scene(scene: DemoScene, scale: int = SCALE) -> DemoScene:
     """The coarse input: the truth degraded by ``scale`` with geosr's default model.
 
     Nodata pixels are filled from their nearest valid neighbours before the
@@ -165,7 +165,8 @@ def degrade_scene(scene, scale=SCALE):
 
     low = degrade(fill_nodata(scene.data.astype(np.float64), scene.valid), scale)
     rows, cols = low.shape[-2:]
-    valid = scene.valid[: rows * scale, : cols * scale].reshape(rows, scale, cols, scale).all(axis=(1, 3))
+    blocks = scene.valid[: rows * scale, : cols * scale].reshape(rows, scale, cols, scale)
+    valid = np.all(blocks, axis=(1, 3))
     out = np.clip(np.rint(low), 1, 65535).astype(np.uint16)
     out[:, ~valid] = NODATA
     lc = scene.landcover[scale // 2 :: scale, scale // 2 :: scale][:rows, :cols]
@@ -174,7 +175,7 @@ def degrade_scene(scene, scale=SCALE):
     return DemoScene(out, valid, lc, transform, scene.crs, scene.pixel * scale, marks)
 
 
-def fill_nodata(data, valid):
+def fill_nodata(data: np.ndarray, valid: np.ndarray) -> np.ndarray:
     """``data`` (bands, rows, cols) with invalid pixels copied from their nearest valid ones."""
     if valid.all():
         return data
@@ -182,7 +183,7 @@ def fill_nodata(data, valid):
     return data[:, iy, ix]
 
 
-def write_scene(path, scene, description=None):
+def write_scene(path: str | os.PathLike, scene: DemoScene, description: str | None = None) -> str:
     """Write a scene as a tiled, compressed GeoTIFF (nodata 0, scales 1e-4)."""
     import rasterio
 
@@ -217,7 +218,7 @@ def write_scene(path, scene, description=None):
     return os.fspath(path)
 
 
-def read_scene(path):
+def read_scene(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
     """Read a 4-band demo raster back as (data uint16 (4, rows, cols), valid mask)."""
     import rasterio
 

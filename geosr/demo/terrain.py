@@ -7,7 +7,7 @@ import math
 import numpy as np
 from scipy import ndimage
 
-__all__ = ["smooth_field", "fractal", "hillshade", "relief", "base_texture"]
+__all__ = ["base_texture", "fractal", "hillshade", "relief", "smooth_field"]
 
 
 def smooth_field(rng, shape, sigma):

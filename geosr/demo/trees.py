@@ -9,7 +9,7 @@ import numpy as np
 from .landcover import codes
 from .terrain import smooth_field
 
-__all__ = ["paint_forest", "crown_sites", "paint_crowns"]
+__all__ = ["crown_sites", "paint_crowns", "paint_forest"]
 
 #: Ground a free-standing crown may grow on.
 _CROWN_GROUND = ("grass", "green-crop", "ripe-cereal", "bare-soil", "gravel", "track")
@@ -90,7 +90,7 @@ def _dome_heights(shape, centres, radii):
     height = np.zeros(shape)
     rows, cols = shape
     for (cy, cx), r in zip(centres, radii):
-        r0 = int(math.ceil(r)) + 1
+        r0 = math.ceil(r) + 1
         y0, y1 = max(int(cy) - r0, 0), min(int(cy) + r0 + 1, rows)
         x0, x1 = max(int(cx) - r0, 0), min(int(cx) + r0 + 1, cols)
         if y0 >= y1 or x0 >= x1:

@@ -9,7 +9,7 @@ import numpy as np
 
 from .terrain import smooth_field
 
-__all__ = ["RiverCourse", "river_course", "paint_river", "paint_reservoir"]
+__all__ = ["RiverCourse", "paint_reservoir", "paint_river", "river_course"]
 
 
 @dataclasses.dataclass(frozen=True)

@@ -10,7 +10,7 @@ import sys
 import numpy as np
 import pytest
 
-import geosr.demo as demo
+from geosr import demo
 from geosr.demo import fields, reflectance, roads, terrain, trees, water
 from geosr.demo.canvas import Grid, Layers
 from geosr.demo.landcover import CODE, LANDCOVER
@@ -101,7 +101,7 @@ def test_crowns_are_domes_as_tall_as_wide():
     assert height[10, 12] == pytest.approx(math.sqrt(1 - 0.25) * 4)
     grid, layers, _ = blank(21)
     layers.paint(np.eye(21, dtype=bool), "road")
-    h, crowns = trees.paint_crowns(grid, layers, np.array([[10.0, 10.0]]), np.array([4.0]))
+    _, crowns = trees.paint_crowns(grid, layers, np.array([[10.0, 10.0]]), np.array([4.0]))
     assert crowns.sum() > 20 and not crowns[10, 10]  # a crown never hides a road
     assert layers.covered_by("trees")[10, 12]
 
@@ -135,7 +135,8 @@ def test_fill_nodata_copies_the_nearest_valid_pixel():
 # ------------------------------------------------------------ plumbing
 def test_the_cli_import_path_still_works():
     from geosr.demo.run import run_demo
-    from geosr.demo.scene import SCALE, run_demo as via_scene
+    from geosr.demo.scene import SCALE
+    from geosr.demo.scene import run_demo as via_scene
 
     assert SCALE == 3 and via_scene is run_demo
     with pytest.raises(AttributeError, match="no attribute 'nothing'"):
