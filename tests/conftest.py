@@ -6,10 +6,7 @@ Synthetic rasters take their pixels from photos bundled with scikit-image
 
 from __future__ import annotations
 
-import hashlib
-import os
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -18,7 +15,7 @@ from affine import Affine
 from rasterio.crs import CRS
 from rasterio.errors import NotGeoreferencedWarning
 
-from helpers import SHARED_DATA, TEST_DATA, BicubicContractModel, camera
+from helpers import SHARED_DATA, TEST_DATA, BicubicContractModel
 
 
 @pytest.fixture

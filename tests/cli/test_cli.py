@@ -260,7 +260,7 @@ def test_library_warnings_are_one_line(recorder, monkeypatch, tmp_path):
     record = geosr.pipeline.magnify.magnify_raster
 
     def warn(*args, **kwargs):
-        warnings.warn("The source has no CRS;\n the output will have none", UserWarning)
+        warnings.warn("The source has no CRS;\n the output will have none", UserWarning, stacklevel=2)
         return record(*args, **kwargs)
 
     monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", warn)

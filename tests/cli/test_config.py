@@ -11,8 +11,8 @@ from click.testing import CliRunner
 
 import geosr.pipeline.magnify
 from geosr.cli import options
-from geosr.cli.main import geosr as cli
 from geosr.cli.config import Key, check_value, load_config, read_toml
+from geosr.cli.main import geosr as cli
 from geosr.errors import ParameterError
 
 if sys.version_info >= (3, 11):
@@ -233,7 +233,7 @@ def test_both_alternatives_in_the_file_are_an_error(tmp_path, calls):
 @pytest.mark.parametrize(
     "text, needles",
     [
-        ("scale = 9\n", ["'scale'", str("c.toml"), "integer from 2 to 8", "9"]),
+        ("scale = 9\n", ["'scale'", "c.toml", "integer from 2 to 8", "9"]),
         ("chunk = 8\nscale = 2\n", ["'chunk'", "at least 16"]),
         ('scale = 2\nco = ["COMPRESS"]\n', ["'co'", "KEY=VALUE"]),
         ('scale = 2\nscheduler = "http://x"\n', ["'scheduler'"]),

@@ -6,9 +6,8 @@ from skimage import color, data
 from skimage.metrics import peak_signal_noise_ratio
 
 from geosr.core.params import header_params, model_sha256
-
-from geosr.modelfile import default_model, default_model_path
 from geosr.core.resample import crop_to_multiple, degrade, upscale_bicubic
+from geosr.modelfile import default_model, default_model_path
 
 SCALES = [2, 3, 4]
 
@@ -36,7 +35,7 @@ def test_shipped_model_beats_bicubic_on_held_out_photos(scale):
         lr = degrade(hr, scale)
         b = slice(scale, -scale)
 
-        def psnr(est):
+        def psnr(est, hr=hr, b=b):
             return peak_signal_noise_ratio(hr[b, b], np.clip(est, 0, 255)[b, b], data_range=255)
 
         gain = psnr(model.magnify(lr.astype(np.float32))) - psnr(upscale_bicubic(lr, scale))

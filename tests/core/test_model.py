@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 from skimage import color, data
 
-from geosr.errors import InputError, ModelError, NotFittedError, ParameterError
 from geosr.core.model import CoupledDictionary
-from geosr.modelfile import load_models, save_models
 from geosr.core.resample import crop_to_multiple, degrade, upscale_bicubic
+from geosr.errors import InputError, ModelError, NotFittedError, ParameterError
+from geosr.modelfile import load_models, save_models
 
 
 def luminance(rgb):
@@ -299,8 +299,8 @@ def _tiny_tiles(rng, n_tiles, t, s, window=81):
 def test_image_level_fit_is_the_least_squares_solution():
     # Reference: numpy.linalg.lstsq on the explicit matrix of the overlapped objective
     # (fewer than five tiles, so nothing is held out and CG runs to convergence).
-    from geosr.core.learn import refine_high_dictionary
     from geosr.core.features import overlap_average
+    from geosr.core.learn import refine_high_dictionary
     from geosr.core.sparse import omp_codes
 
     rng = np.random.default_rng(3)

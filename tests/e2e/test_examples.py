@@ -10,6 +10,7 @@ from pathlib import Path
 import pytest
 import rasterio
 from affine import Affine
+
 from helpers import TEST_DATA
 
 EXAMPLES = Path(__file__).resolve().parents[2] / "examples"
