@@ -226,13 +226,3 @@ def read_scene(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
         data = src.read()
         valid = src.dataset_mask() > 0
     return data, valid
-
-
-def __getattr__(name):
-    # run_demo lives in .run (which imports this module); kept importable from
-    # here because `geosr demo` imports it as geosr.demo.scene.run_demo.
-    if name == "run_demo":
-        from .run import run_demo
-
-        return run_demo
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

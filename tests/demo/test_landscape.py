@@ -133,16 +133,6 @@ def test_fill_nodata_copies_the_nearest_valid_pixel():
 
 
 # ------------------------------------------------------------ plumbing
-def test_the_cli_import_path_still_works():
-    from geosr.demo.run import run_demo
-    from geosr.demo.scene import SCALE
-    from geosr.demo.scene import run_demo as via_scene
-
-    assert SCALE == 3 and via_scene is run_demo
-    with pytest.raises(AttributeError, match="no attribute 'nothing'"):
-        from geosr.demo import scene
-
-        scene.nothing  # noqa: B018
 
 
 def test_quicklook_builds_on_an_agg_canvas_without_pyplot(tmp_path):
