@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: test demo bench install clean
+.PHONY: test lint demo bench install clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -14,8 +14,12 @@ $(STAMP): pyproject.toml
 
 install: $(STAMP)
 
-test: $(STAMP)
+test: $(STAMP) lint
 	$(BIN)/python -m pytest $(PYTEST_ARGS)
+
+lint: $(STAMP)
+	$(BIN)/ruff check geosr tests benchmarks scripts examples
+	$(BIN)/mypy
 
 demo: $(STAMP)
 	$(BIN)/geosr demo demo-output

@@ -26,11 +26,10 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from _common import best_of, result  # noqa: E402
 
-from geosr.core.model import _CENTRE, _apply_projections, _nearest_anchors
-
-from geosr.modelfile import default_model  # noqa: E402
-from geosr.core.features import FEATURE_RADIUS, lowres_windows  # noqa: E402
+from geosr.core.anchored import apply_projections, nearest_anchors  # noqa: E402
+from geosr.core.features import FEATURE_RADIUS, WINDOW_CENTRE, lowres_windows  # noqa: E402
 from geosr.core.sparse import omp_codes  # noqa: E402
+from geosr.modelfile import default_model  # noqa: E402
 
 
 def in_two_threads(fn, *arrays):
@@ -47,7 +46,7 @@ def image_features(model, side):
     img = np.tile(data.camera().astype(np.float64) * 40, (side // 512 + 1, side // 512 + 1))[:side, :side]
     padded = np.pad(img, FEATURE_RADIUS, mode="symmetric")
     windows = lowres_windows(padded)
-    windows = windows - windows[:, _CENTRE : _CENTRE + 1]
+    windows = windows - windows[:, WINDOW_CENTRE : WINDOW_CENTRE + 1]
     return np.ascontiguousarray(windows @ model.feature_kernel_.astype(np.float64).T)
 
 
@@ -67,10 +66,10 @@ def main():
     n, d = features.shape
     k = model.dictionary_low_.shape[1]
     p = model.projections_.shape[1]
-    _nearest_anchors(features[:8], model.dictionary_low_)  # compile
-    t_anchor = best_of(lambda: in_two_threads(lambda f: _nearest_anchors(f, model.dictionary_low_), features), 3)
-    anchors = _nearest_anchors(features, model.dictionary_low_)
-    t_proj = best_of(lambda: in_two_threads(lambda f, a_: _apply_projections(f, a_, model.projections_),
+    nearest_anchors(features[:8], model.dictionary_low_)  # compile
+    t_anchor = best_of(lambda: in_two_threads(lambda f: nearest_anchors(f, model.dictionary_low_), features), 3)
+    anchors = nearest_anchors(features, model.dictionary_low_)
+    t_proj = best_of(lambda: in_two_threads(lambda f, a_: apply_projections(f, a_, model.projections_),
                                             features, anchors), 3)
     rng = np.random.default_rng(2)
     atoms = rng.standard_normal((d, 1000)).astype(np.float32)

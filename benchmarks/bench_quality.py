@@ -36,9 +36,8 @@ from skimage import color, data
 from skimage.metrics import peak_signal_noise_ratio
 
 from geosr.core.model import CoupledDictionary
-
-from geosr.modelfile import default_model
 from geosr.core.resample import crop_to_multiple, degrade, upscale_bicubic
+from geosr.modelfile import default_model
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "scripts"))

@@ -47,7 +47,7 @@ def make_problem(n_features, n_atoms, n_signals, n_nonzero, seed):
     D = rng.standard_normal((n_features, n_atoms))
     D /= np.linalg.norm(D, axis=0)
     X = np.zeros((n_features, n_signals))
-    for t in range(n_nonzero):
+    for _ in range(n_nonzero):
         atoms = rng.integers(0, n_atoms, n_signals)
         X += D[:, atoms] * rng.standard_normal(n_signals)
     X += 0.1 * rng.standard_normal(X.shape) * np.sqrt(n_nonzero / n_features)

@@ -116,7 +116,7 @@ def check_int(
             and math.isfinite(float(value))
             and float(value).is_integer()
         ):
-            value = int(value)
+            value = math.floor(value)  # integral already: floor is exact for any Real
         else:
             raise ParameterError(
                 f"The {name!r} parameter must be an integer{bound}{extra}, got {value!r}"

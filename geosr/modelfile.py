@@ -12,21 +12,30 @@ import json
 import os
 import tempfile
 import warnings
+from collections.abc import Sequence
 from importlib import resources
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from . import _version
+from ._validation import check_scale
+from .cautions import CAUTION
 from .core.features import FEATURE_RADIUS
-from .core.model import CoupledDictionary, model_sha256
-from .core.resample import check_scale
+from .core.model import CoupledDictionary
+from .core.params import check_params, header_params, model_sha256
 from .errors import ModelError, ParameterError
+
+if TYPE_CHECKING:
+    from importlib.resources.abc import Traversable
 
 __all__ = [
     "FORMAT_VERSION",
     "default_model",
     "default_model_path",
     "load_models",
+    "model_card",
+    "read_header",
     "save_models",
 ]
 
@@ -41,7 +50,11 @@ _ARRAY_NAMES = {
 
 
 
-def save_models(path, models, band_names=None):
+def save_models(
+    path: str | os.PathLike,
+    models: Sequence[CoupledDictionary],
+    band_names: Sequence[str] | None = None,
+) -> None:
     """Write one shared model or one model per band to an ``.npz`` file.
 
     The file holds the learned arrays and a JSON header with the format
@@ -60,7 +73,7 @@ def save_models(path, models, band_names=None):
     models = list(models)
     if not models:
         raise ParameterError("The 'models' parameter must hold at least one model, got none")
-    scales = {m._scale for m in models}
+    scales = {check_scale(m.scale) for m in models}
     if len(scales) != 1:
         raise ParameterError(f"The models must share one scale, got scales {sorted(scales)}")
     if band_names is not None and len(band_names) != len(models):
@@ -68,7 +81,7 @@ def save_models(path, models, band_names=None):
             f"The 'band_names' parameter must name each of the {len(models)} models, "
             f"got {len(band_names)} names"
         )
-    arrays = {}
+    arrays: dict[str, Any] = {}
     entries = []
     for n, model in enumerate(models):
         for name, value in model._arrays().items():
@@ -101,17 +114,26 @@ def save_models(path, models, band_names=None):
         raise
 
 
-def load_models(path):
+def load_models(path: str | os.PathLike) -> list[CoupledDictionary]:
     """Read a model file written by :func:`save_models`.
 
     Never unpickles; checks the format version, the shapes, finiteness and
     the sha256 of every model, and warns when the file was written by
     another geosr version.
 
+    Parameters
+    ----------
+    path : str or os.PathLike
+
     Returns
     -------
     list of CoupledDictionary
         One shared model, or one per band.
+
+    Raises
+    ------
+    ModelError
+        A missing, damaged, edited or newer file.
     """
     path = os.fspath(path)
     where = f"The model file {path!r}"
@@ -164,8 +186,8 @@ def _model_from_entry(entry, n, arrays):
     if unknown:
         raise ModelError(f"model {n} must have known parameters, got {sorted(unknown)}")
     model = CoupledDictionary(**params)
-    p = model._validate_params()
-    names = _ARRAY_NAMES[str(p["method"])]
+    p = check_params(model.get_params(deep=False))
+    names = _ARRAY_NAMES[str(p.method)]
     got = {}
     for name in names:
         key = f"m{n}_{name}"
@@ -175,9 +197,9 @@ def _model_from_entry(entry, n, arrays):
         if a.dtype.kind != "f" or not np.isfinite(a).all():
             raise ModelError(f"model {n} array {name!r} must hold finite floats, got {a.dtype} with non-finite values")
         got[name] = a.astype(np.float32, copy=False)
-    if model_sha256(got, model._header_params()) != entry.get("sha256"):
+    if model_sha256(got, header_params(model.get_params())) != entry.get("sha256"):
         raise ModelError(f"model {n} arrays must match the checksum in the header, got different bytes")
-    s = p["scale"]
+    s = p.scale
     window = (2 * FEATURE_RADIUS + 1) ** 2
     d = got["feature_kernel"].shape[0] if got["feature_kernel"].ndim == 2 else -1
     k = got["dictionary_low"].shape[1] if got["dictionary_low"].ndim == 2 else -1
@@ -206,14 +228,39 @@ def _model_from_entry(entry, n, arrays):
     return model
 
 
-def default_model_path(scale):
-    """Path of the model shipped in the package for a scale factor."""
+def default_model_path(scale: int) -> Traversable:
+    """Path of the model shipped in the package for a scale factor.
+
+    Parameters
+    ----------
+    scale : int
+        From 2 to 8 (models are shipped for 2, 3 and 4).
+
+    Returns
+    -------
+    importlib.resources.abc.Traversable
+        It may not exist (see :func:`default_model`).
+    """
     scale = check_scale(scale)
     return resources.files("geosr") / "models" / f"default-x{scale}.npz"
 
 
-def default_model(scale):
-    """The model shipped in the package for ``scale`` (2, 3 or 4)."""
+def default_model(scale: int) -> CoupledDictionary:
+    """The model shipped in the package for ``scale`` (2, 3 or 4).
+
+    Parameters
+    ----------
+    scale : int
+
+    Returns
+    -------
+    CoupledDictionary
+
+    Raises
+    ------
+    ModelError
+        No model is shipped for that scale, or its file is missing.
+    """
     path = default_model_path(scale)
     if not path.is_file():
         if check_scale(scale) in (2, 3, 4):
@@ -226,3 +273,70 @@ def default_model(scale):
             "train a model with 'geosr train' for other scales"
         )
     return CoupledDictionary.load(str(path))
+
+
+def read_header(path: str | os.PathLike) -> dict[str, Any]:
+    """The JSON header of a model file (format, versions, models), or {} if unreadable.
+
+    Read with ``allow_pickle=False``; no check is made (:func:`load_models`
+    makes them).
+    """
+    try:
+        with np.load(path, allow_pickle=False) as npz:
+            header = json.loads(str(npz["header"]))
+    except Exception:  # noqa: BLE001 - any unreadable file has no header to show
+        return {}
+    return header if isinstance(header, dict) else {}
+
+
+def model_card(
+    path: str | os.PathLike, models: Sequence[CoupledDictionary] | None = None
+) -> dict[str, Any]:
+    """The model card of a model file as a JSON-ready dict.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The model file.
+    models : list of CoupledDictionary, optional
+        What :func:`load_models` returned for it (read from ``path`` when
+        not given).
+
+    Returns
+    -------
+    dict
+        ``file``, ``size_bytes``, ``written_by`` and ``format_version``
+        (from the file's header), ``read_by`` (this geosr), ``scale``,
+        ``shared`` (one model for every band), ``models`` (per model: index,
+        band name, scale, method, parameters, training provenance, sha256)
+        and ``caution``.
+    """
+    if models is None:
+        models = load_models(path)
+    header = read_header(path)
+    entries = []
+    for n, m in enumerate(models):
+        params = m.get_params()
+        params = {k: (str(v) if hasattr(v, "value") else v) for k, v in params.items()}
+        entries.append(
+            {
+                "index": n,
+                "band_name": getattr(m, "band_name_", None),
+                "scale": int(params["scale"]),
+                "method": str(params.get("method")),
+                "parameters": params,
+                "training": dict(getattr(m, "training_", {}) or {}),
+                "sha256": getattr(m, "sha256_", None),
+            }
+        )
+    return {
+        "file": os.fspath(path),
+        "size_bytes": os.path.getsize(path) if os.path.exists(path) else None,
+        "written_by": header.get("geosr_version"),
+        "format_version": header.get("format_version"),
+        "read_by": _version.__version__,
+        "scale": entries[0]["scale"] if entries else None,
+        "shared": len(entries) == 1,
+        "models": entries,
+        "caution": CAUTION,
+    }

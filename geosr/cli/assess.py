@@ -10,20 +10,6 @@ from ..enums import Degradation
 from . import options
 
 
-def _assess_function():
-    """geosr.assess_raster wherever this installation has it."""
-    from ..errors import RunError
-
-    for module in ("geosr.assess.protocol", "geosr"):
-        try:
-            return options.library_function(module, "assess_raster")
-        except RunError:
-            continue
-    raise RunError(
-        "'geosr assess' needs geosr.assess_raster, which this installation does not have yet"
-    )
-
-
 @click.command(short_help="Assess magnification under Wald's protocol.")
 @click.argument("reference", metavar="REFERENCE")
 @click.option(
@@ -57,7 +43,7 @@ def _assess_function():
     "--crop",
     "crop_size",
     type=options.IntAtLeast(8),
-    default=None,
+    default=96,
     metavar="PIXELS",
     help="Side of the side-by-side crop figure in high-res pixels. Default 96.",
 )
@@ -88,41 +74,36 @@ def assess(ctx, reference, report_dir, scale, model, self_train, train_atoms, tr
                 if v is not None}
     if training and not self_train:
         raise click.UsageError("--atoms and --samples only apply with --self-train", ctx=ctx)
-    extra = {}
-    if training:
-        extra["training"] = training
-    if degradation is not None:
-        extra["degradation"] = degradation
-    if crop_size is not None:
-        extra["crop_size"] = crop_size
-    assess_raster = _assess_function()
-    result = options.call_library(
-        assess_raster,
+    from ..assess.protocol import assess_raster
+
+    result = assess_raster(
         reference,
         report_dir,
         scale,
         model=model,
         self_train=self_train,
         method=method,
+        degradation=degradation,
         sigma=sigma,
         bands=list(bands) if bands else None,
         consistency=consistency,
         ensemble=ensemble,
         spectral_guard=spectral_guard,
+        training=training or None,
+        crop_size=crop_size,
         overwrite=overwrite,
         quiet=quiet,
-        **extra,
-        _optional=options.defaulted(ctx, spectral_guard="spectral_guard"),
     )
     options.report(ctx, f"geosr: {_summary(result, report_dir)}")
 
 
-def _summary(result, report_dir):
-    """One line: PSNR of geosr and bicubic overall, and where the report is."""
+def _summary(metrics, report_dir):
+    """One line: PSNR of geosr and bicubic overall, and where the report is.
+
+    ``metrics`` is what :func:`geosr.assess.protocol.assess_raster` returns
+    (the content of metrics.json).
+    """
     where = os.path.join(os.fspath(report_dir), "report.md")
-    try:
-        ours = result["geosr"]["overall"]["psnr"]
-        bicubic = result["bicubic"]["overall"]["psnr"]
-        return f"PSNR {ours:.2f} dB with geosr, {bicubic:.2f} dB with bicubic; report: {where}"
-    except (TypeError, KeyError):
-        return f"report: {where}"
+    ours = metrics["geosr"]["overall"]["psnr"]
+    bicubic = metrics["bicubic"]["overall"]["psnr"]
+    return f"PSNR {ours:.2f} dB with geosr, {bicubic:.2f} dB with bicubic; report: {where}"

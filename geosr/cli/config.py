@@ -33,11 +33,6 @@ from typing import NamedTuple
 
 from ..errors import ParameterError
 
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover - exercised on Python 3.10 only
-    import tomli as tomllib
-
 __all__ = ["Key", "KINDS", "read_toml", "check_value", "load_config"]
 
 
@@ -101,6 +96,12 @@ def read_toml(path):
         The file is missing, unreadable, not UTF-8 or not valid TOML; the
         message names the file (and TOML's own line and column).
     """
+    # imported here: only a run with --config pays for the TOML parser
+    if sys.version_info >= (3, 11):
+        import tomllib
+    else:  # pragma: no cover - exercised on Python 3.10 only
+        import tomli as tomllib
+
     try:
         with open(path, "rb") as f:
             return tomllib.load(f)

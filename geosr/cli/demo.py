@@ -45,7 +45,7 @@ def demo(ctx, outdir, seed, size, model, quiet):
     and the truth on the same detail. Earlier demo files in OUTDIR are
     replaced.
     """
-    from ..demo.scene import SCALE, run_demo
+    from ..demo import SCALE, run_demo
 
     if size % SCALE:
         raise click.BadParameter(f"must be a multiple of {SCALE}, got {size}", ctx=ctx,

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import os
 import textwrap
 
 import click
@@ -14,66 +13,6 @@ _METHOD_NAMES = {
     "sparse": "sparse coding over coupled K-SVD dictionaries (Zeyde, Elad & Protter 2010)",
     "anchored": "anchored neighbourhood regression, A+ (Timofte, De Smet & Van Gool 2014)",
 }
-
-
-def _file_header(path):
-    """The JSON header of a model file (format and writer version), or {}.
-
-    Read with ``allow_pickle=False``; only called after load_models accepted
-    the file.
-    """
-    import numpy as np
-
-    try:
-        with np.load(path, allow_pickle=False) as npz:
-            header = json.loads(str(npz["header"]))
-    except Exception:
-        return {}
-    return header if isinstance(header, dict) else {}
-
-
-def model_card(path, models, header=None):
-    """The model card of a model file as a JSON-ready dict.
-
-    Parameters
-    ----------
-    path : str
-        The model file.
-    models : list of CoupledDictionary
-        What :func:`geosr.modelfile.load_models` returned for it.
-    header : dict, optional
-        The file's JSON header (format version, writing geosr version).
-    """
-    from .._version import __version__
-    from ..cautions import CAUTION
-
-    header = header or {}
-    entries = []
-    for n, m in enumerate(models):
-        params = m.get_params()
-        params = {k: (str(v) if hasattr(v, "value") else v) for k, v in params.items()}
-        entries.append(
-            {
-                "index": n,
-                "band_name": getattr(m, "band_name_", None),
-                "scale": int(params.get("scale")),
-                "method": str(params.get("method")),
-                "parameters": params,
-                "training": dict(getattr(m, "training_", {}) or {}),
-                "sha256": getattr(m, "sha256_", None),
-            }
-        )
-    return {
-        "file": os.fspath(path),
-        "size_bytes": os.path.getsize(path) if os.path.exists(path) else None,
-        "written_by": header.get("geosr_version"),
-        "format_version": header.get("format_version"),
-        "read_by": __version__,
-        "scale": entries[0]["scale"] if entries else None,
-        "shared": len(entries) == 1,
-        "models": entries,
-        "caution": CAUTION,
-    }
 
 
 def _value(v):
@@ -87,7 +26,7 @@ def _value(v):
 
 
 def format_card(card, width=78):
-    """Render a model card dict (from :func:`model_card`) as text."""
+    """Render a model card dict (from :func:`geosr.modelfile.model_card`) as text."""
     lines = []
     label_width = 19
 
@@ -168,9 +107,9 @@ def describe(ctx, model, scale, as_json):
             f"got {'both' if model is not None else 'neither'}",
             ctx=ctx,
         )
-    load_models = options.library_function("geosr.modelfile", "load_models")
+    from ..modelfile import default_model_path, load_models, model_card
+
     if model is None:
-        default_model_path = options.library_function("geosr.modelfile", "default_model_path")
         path = default_model_path(scale)
         if not path.is_file():
             from ..errors import ModelError
@@ -181,7 +120,7 @@ def describe(ctx, model, scale, as_json):
             )
         model = str(path)
     models = load_models(model)
-    card = model_card(model, models, _file_header(model))
+    card = model_card(model, models)
     if as_json:
         click.echo(json.dumps(card, indent=2, sort_keys=False))
     else:

@@ -54,7 +54,7 @@ from . import options
     "--max-output",
     "max_output_bytes",
     type=options.ByteSize(),
-    default=None,
+    default="256G",  # the library's DEFAULT_MAX_OUTPUT_BYTES, as the help says
     metavar="SIZE",
     help="Refuse outputs larger than SIZE uncompressed, e.g. 500G. Default 256G.",
 )
@@ -102,14 +102,9 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
         names = {"n_atoms": "--atoms", "max_samples": "--samples", "degradation": "--degradation"}
         given = ", ".join(names[k] for k in training)
         raise click.UsageError(f"{given} only apply with --self-train, got them without it", ctx=ctx)
-    extra = {"training": training} if training else {}
-    if max_output_bytes is not None:
-        extra["max_output_bytes"] = max_output_bytes
-    if no_space_check:
-        extra["check_free_space"] = False
-    magnify_raster = options.library_function("geosr.pipeline.magnify", "magnify_raster")
-    result = options.call_library(
-        magnify_raster,
+    from ..pipeline.magnify import magnify_raster
+
+    result = magnify_raster(
         src,
         dst,
         model,
@@ -128,28 +123,24 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
         stac=stac,
         quiet=quiet,
         self_train=self_train,
-        **extra,
-        _optional=options.defaulted(ctx, chunk_size="chunk", spectral_guard="spectral_guard"),
+        training=training or None,
+        max_output_bytes=max_output_bytes,
+        check_free_space=not no_space_check,
     )
-    options.report(ctx, f"geosr: wrote {_summary(result, dst)}")
-    for residual in getattr(result, "consistency", None) or ():
+    options.report(ctx, f"geosr: wrote {_summary(result)}")
+    for residual in result.consistency or ():
         if residual.rms is not None:
             options.report(
                 ctx,
                 f"geosr: band {residual.band} consistency residual RMS {residual.rms:.4g} "
                 f"({residual.percent:.3g} % of its range), max {residual.max:.4g}",
             )
-    stac_path = getattr(result, "stac", None)
-    if stac_path:
-        options.report(ctx, f"geosr: wrote {stac_path}")
+    if result.stac is not None:
+        options.report(ctx, f"geosr: wrote {result.stac}")
 
 
-def _summary(result, dst):
-    """One line about what magnify_raster wrote."""
-    path = options.result_path(result, dst)
-    try:
-        size = f"{result.width} x {result.height}, {result.count} band"
-        size += "s" if result.count != 1 else ""
-        return f"{path} ({size}, x{result.scale}, {result.method}, {result.seconds:.1f} s)"
-    except AttributeError:
-        return path
+def _summary(result):
+    """One line about what magnify_raster wrote: a :class:`MagnifyResult`."""
+    size = f"{result.width} x {result.height}, {result.count} band"
+    size += "s" if result.count != 1 else ""
+    return f"{result.dst} ({size}, x{result.scale}, {result.method}, {result.seconds:.1f} s)"

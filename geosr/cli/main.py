@@ -145,7 +145,7 @@ class GeosrGroup(click.Group):
             return super().make_context(info_name, args, parent=parent, **extra)
 
     def invoke(self, ctx):
-        with _error_policy(ctx):
+        with _error_policy(ctx), _sigterm_as_terminated():
             return super().invoke(ctx)
 
 
@@ -196,16 +196,29 @@ def _on_sigterm(signum, frame):
     raise Terminated("terminated by SIGTERM")
 
 
-def main(argv=None):
-    """Entry point of the ``geosr`` console script."""
-    previous = None
-    with contextlib.suppress(ValueError, OSError):  # not in the main thread
-        previous = signal.signal(signal.SIGTERM, _on_sigterm)
+@contextlib.contextmanager
+def _sigterm_as_terminated():
+    """Turn SIGTERM into :class:`Terminated` while a subcommand runs.
+
+    The one SIGTERM handler of geosr: installed around every subcommand, of
+    ``geosr`` and of ``rio geosr`` alike, so the library's clean-up for
+    Ctrl-C (no destination, no temporary file left) runs for SIGTERM too and
+    the run ends with exit code 143. Does nothing outside the main thread.
+    """
     try:
-        geosr.main(args=argv, prog_name="geosr")
+        previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    except (ValueError, OSError):  # not in the main thread
+        previous = None
+    try:
+        yield
     finally:
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)
+
+
+def main(argv=None):
+    """Entry point of the ``geosr`` console script."""
+    geosr.main(args=argv, prog_name="geosr")
 
 
 if __name__ == "__main__":  # pragma: no cover

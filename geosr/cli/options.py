@@ -11,20 +11,18 @@ This module imports nothing heavy (no numpy, no rasterio), so that
 
 from __future__ import annotations
 
-import importlib
-import inspect
 import re
 
 import click
 from click.core import ParameterSource
 
+from .._validation import MIN_CHUNK, SCALE_MAX, SCALE_MIN
 from ..enums import Degradation, Method
+from .config import Key, load_config
 
 __all__ = [
-    "SCALE_MIN",
     "model_source_options",
     "sigma_option",
-    "SCALE_MAX",
     "ScaleType",
     "IntAtLeast",
     "BandsType",
@@ -45,12 +43,9 @@ __all__ = [
     "config_option",
     "config_schema",
     "exclusive",
-    "library_function",
-    "call_library",
+    "workers_and_scheduler",
+    "report",
 ]
-
-#: The range of scale factors the core accepts (geosr.core.resample.check_scale).
-SCALE_MIN, SCALE_MAX = 2, 8
 
 #: The subcommands that may have a table of their own in a config file.
 COMMANDS = ("train", "magnify", "assess", "describe", "demo")
@@ -368,9 +363,6 @@ bands_option = click.option(
     help="Band numbers to use, starting at 1, e.g. '1,2,4' or '1-3'. Default: all bands.",
 )
 
-#: Smallest block side (geosr.raster.windows.MIN_CHUNK).
-MIN_CHUNK = 16
-
 chunk_option = click.option(
     "--chunk",
     type=IntAtLeast(MIN_CHUNK),
@@ -432,8 +424,6 @@ def config_schema(command):
         Python name (``"self_train"``), ``kind`` one of the kinds that
         :func:`geosr.cli.config.check_value` knows, ``choices`` a tuple or None.
     """
-    from .config import Key
-
     schema = {}
     for param in command.params:
         if not isinstance(param, click.Option) or param.name in ("config", "help"):
@@ -462,8 +452,6 @@ def config_schema(command):
 def _load_config_callback(ctx, param, value):
     if value is None:
         return None
-    from .config import load_config
-
     schema = config_schema(ctx.command)
     values = load_config(value, schema, command=ctx.info_name, sections=COMMANDS)
     defaults = dict(ctx.default_map or {})
@@ -547,92 +535,10 @@ def workers_and_scheduler(ctx):
     return exclusive(ctx, "workers", "scheduler")
 
 
-# ------------------------------------------------------ calling the library
-
-
-def library_function(module, name):
-    """Import ``module`` and return its attribute ``name``.
-
-    Raises :class:`geosr.errors.RunError` (exit 1) naming what is missing when
-    this installation does not have it; a module that exists but fails to
-    import for another reason lets that error through.
-    """
-    from ..errors import RunError
-    from .._version import __version__
-
-    try:
-        mod = importlib.import_module(module)
-    except ModuleNotFoundError as exc:
-        if exc.name is not None and (module == exc.name or module.startswith(exc.name + ".")):
-            raise RunError(
-                f"{module}.{name} is not available in this installation of geosr "
-                f"{__version__} (no module {exc.name!r})"
-            ) from None
-        raise
-    try:
-        return getattr(mod, name)
-    except AttributeError:
-        raise RunError(
-            f"{module}.{name} is not available in this installation of geosr {__version__}"
-        ) from None
-
-
-def defaulted(ctx, **keywords):
-    """The library keywords whose option was not given (left at its default).
-
-    ``keywords`` maps a library keyword to the click parameter name, e.g.
-    ``chunk_size="chunk"``.
-    """
-    given = (ParameterSource.COMMANDLINE, ParameterSource.ENVIRONMENT, ParameterSource.DEFAULT_MAP)
-    return {kw for kw, name in keywords.items() if ctx.get_parameter_source(name) not in given}
-
-
-def call_library(func, *args, _optional=(), **kwargs):
-    """Call ``func`` with the keywords it accepts.
-
-    A keyword the function does not take is dropped when its value is unset
-    (None, False, empty) or listed in ``_optional`` (an option left at its
-    default, see :func:`defaulted`); when the user set it, the call is
-    refused with a one-line RunError naming the option, instead of a
-    TypeError from deep inside.
-    """
-    from ..errors import RunError
-
-    try:
-        params = inspect.signature(func).parameters
-    except (TypeError, ValueError):  # builtins without a signature
-        return func(*args, **kwargs)
-    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in params.values()):
-        return func(*args, **kwargs)
-    accepted = {}
-    for key, value in kwargs.items():
-        if key in params:
-            accepted[key] = value
-        elif _is_set(value) and value != {} and key not in _optional:
-            raise RunError(
-                f"The option {key.replace('_', '-')!r} is not supported by "
-                f"{func.__module__}.{func.__qualname__} in this installation, got {value!r}"
-            )
-    return func(*args, **accepted)
+# ------------------------------------------------------------------ output
 
 
 def report(ctx, message):
     """Print a progress or summary line on stderr unless ``--quiet``."""
     if not ctx.params.get("quiet"):
         click.echo(message, err=True)
-
-
-def result_path(result, default):
-    """The path a library call says it wrote, or ``default``."""
-    import os
-
-    if isinstance(result, (str, os.PathLike)):
-        return os.fspath(result)
-    for name in ("dst", "path"):
-        if isinstance(result, dict) and isinstance(result.get(name), (str, os.PathLike)):
-            return os.fspath(result[name])
-        path = getattr(result, name, None)
-        if isinstance(path, (str, os.PathLike)):
-            return os.fspath(path)
-    return os.fspath(default)
-

@@ -72,7 +72,7 @@ from . import options
     "--samples",
     "max_samples",
     type=options.IntAtLeast(10),
-    default=None,
+    default=100_000,
     metavar="N",
     help="Training patches sampled across the references. Default 100000.",
 )
@@ -118,36 +118,34 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
             f"--sigma only applies to --degradation gaussian, got --degradation {degradation}",
             ctx=ctx,
         )
-    train_from_rasters = options.library_function("geosr.pipeline.magnify", "train_from_rasters")
-    params = {
-        "method": method,
-        "degradation": degradation,
-        "sigma": sigma,
-        "n_atoms": n_atoms,
-        "sparsity": sparsity,
-        "n_iter": n_iter,
-        "neighbours": neighbours,
-        "high_fit": high_fit,
-        "max_samples": max_samples,
+    from ..pipeline.magnify import train_from_rasters
+
+    # CoupledDictionary parameters: only those given, the model has the defaults
+    model_params = {
+        name: value
+        for name, value in (("degradation", degradation), ("sigma", sigma), ("n_atoms", n_atoms),
+                            ("sparsity", sparsity), ("n_iter", n_iter),
+                            ("neighbours", neighbours), ("high_fit", high_fit))
+        if value is not None
     }
-    result = options.call_library(
-        train_from_rasters,
+    models = train_from_rasters(
         list(references),
         scale,
         bands=list(bands) if bands else None,
         shared=shared,
-        random_state=random_state,
+        max_samples=max_samples,
+        method=method,
         chunk_size=chunk,
         workers=workers,
         scheduler=scheduler,
+        random_state=random_state,
         quiet=quiet,
         output=output,
-        **{k: v for k, v in params.items() if v is not None},
-        _optional=options.defaulted(ctx, chunk_size="chunk", random_state="seed"),
+        **model_params,
     )
-    n = len(result) if isinstance(result, (list, tuple)) else 1
     if shared:
         kind = "1 model shared by every band"
     else:
+        n = len(models)
         kind = f"{n} model{'s' if n != 1 else ''}, one per band"
     options.report(ctx, f"geosr: wrote {output} ({kind}, x{scale})")

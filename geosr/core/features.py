@@ -34,11 +34,14 @@ from functools import lru_cache
 import numba
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
+from numpy.typing import DTypeLike
 
 from .resample import UPSCALE_MARGIN, upscale_valid
 
 __all__ = [
     "FEATURE_RADIUS",
+    "PATCH_REACH",
+    "WINDOW_CENTRE",
     "derivative_filters",
     "raw_feature_kernel",
     "lowres_windows",
@@ -58,8 +61,11 @@ FEATURE_RADIUS = 4
 #: Centres needed around a window so that each of its cells has all nine patches.
 PATCH_REACH = 1
 
+#: Index of the centre pixel in a flattened low-res window (:func:`lowres_windows`).
+WINDOW_CENTRE = ((2 * FEATURE_RADIUS + 1) ** 2) // 2
 
-def derivative_filters(scale):
+
+def derivative_filters(scale: int) -> list[tuple[int, np.ndarray, int]]:
     """The four 1-D derivative filters and their first offsets.
 
     Returns a list of ``(axis, taps, start)``: the filtered value at high-res
@@ -114,7 +120,7 @@ def _raw_feature_kernel(scale):
     return raw.T.copy()  # (4 * (3s)**2, (2r + 1)**2)
 
 
-def raw_feature_kernel(scale):
+def raw_feature_kernel(scale: int) -> np.ndarray:
     """Linear map from a low-res window to the raw feature of its centre.
 
     Returns
@@ -126,7 +132,7 @@ def raw_feature_kernel(scale):
     return _raw_feature_kernel(int(scale)).copy()
 
 
-def lowres_windows(padded, radius=FEATURE_RADIUS):
+def lowres_windows(padded: np.ndarray, radius: int = FEATURE_RADIUS) -> np.ndarray:
     """All ``(2r+1) x (2r+1)`` windows of a padded low-res array, as rows.
 
     Parameters
@@ -144,7 +150,7 @@ def lowres_windows(padded, radius=FEATURE_RADIUS):
     return view.reshape(-1, size * size)
 
 
-def raw_features(padded, scale):
+def raw_features(padded: np.ndarray, scale: int) -> np.ndarray:
     """Raw (un-projected) features of every interior centre of a padded array.
 
     Returns ``(h * w, 4 * (3s)**2)``; used for training and for tests, the
@@ -154,7 +160,7 @@ def raw_features(padded, scale):
     return lowres_windows(padded) @ k.T
 
 
-def detail_patches(detail, scale, rows, cols):
+def detail_patches(detail: np.ndarray, scale: int, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
     """High-res patches of a detail image at the given centres.
 
     Parameters
@@ -174,13 +180,13 @@ def detail_patches(detail, scale, rows, cols):
     return view[np.asarray(rows) - 1, np.asarray(cols) - 1].reshape(len(rows), -1)
 
 
-def overlap_canvas(h, w, scale, dtype):
+def overlap_canvas(h: int, w: int, scale: int, dtype: DTypeLike) -> np.ndarray:
     """An empty accumulator for :func:`overlap_add` over an ``h x w`` window."""
     s = int(scale)
     return np.zeros((h + 4, s, w + 4, s), dtype=dtype)
 
 
-def overlap_add(canvas, patches, first_row):
+def overlap_add(canvas: np.ndarray, patches: np.ndarray, first_row: int) -> None:
     """Add a strip of patches into an overlap canvas.
 
     Parameters
@@ -218,7 +224,7 @@ def _overlap_add_kernel(canvas, p, first_row):  # pragma: no cover - compiled
                             canvas[row, y, b + j, x] += p[i, j, a, y, b, x]
 
 
-def canvas_average(canvas):
+def canvas_average(canvas: np.ndarray) -> np.ndarray:
     """The averaged detail of the window from a filled canvas, (s*h, s*w)."""
     hc, s, wc, _ = canvas.shape
     h, w = hc - 4, wc - 4
@@ -226,7 +232,7 @@ def canvas_average(canvas):
     return inner.reshape(h * s, w * s)
 
 
-def overlap_average(patches, scale):
+def overlap_average(patches: np.ndarray, scale: int) -> np.ndarray:
     """Average the nine patches covering each cell of a window.
 
     Parameters
@@ -245,7 +251,7 @@ def overlap_average(patches, scale):
     return canvas_average(canvas)
 
 
-def pca_basis(covariance, energy=0.999):
+def pca_basis(covariance: np.ndarray, energy: float = 0.999) -> tuple[np.ndarray, np.ndarray]:
     """Principal axes keeping a fraction of the energy (uncentred PCA).
 
     The features are not centred: centring would break the homogeneity of

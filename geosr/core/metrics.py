@@ -39,10 +39,12 @@ import math
 from typing import NamedTuple
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy import ndimage
 
+from .._validation import check_int, check_scale
 from ..errors import InputError, ParameterError
-from .resample import check_scale, degradation_margin, degradation_taps, degrade
+from .resample import degradation_margin, degradation_taps, degrade
 
 __all__ = [
     "psnr",
@@ -202,7 +204,8 @@ def _overall_or_bands(values, per_band):
 # --------------------------------------------------------------------------
 
 
-def psnr(reference, estimate, *, data_range=None, valid=None, per_band=False):
+def psnr(reference: ArrayLike, estimate: ArrayLike, *, data_range: float | None = None,
+         valid: ArrayLike | None = None, per_band: bool = False) -> float | np.ndarray:
     """Peak signal-to-noise ratio in decibels.
 
     ``PSNR = 10 log10(R^2 / MSE)`` with ``R`` the data range and ``MSE`` the
@@ -258,7 +261,8 @@ def _psnr_from_mse(peak, mse):
 # --------------------------------------------------------------------------
 
 
-def ssim(reference, estimate, *, data_range=None, valid=None, per_band=False):
+def ssim(reference: ArrayLike, estimate: ArrayLike, *, data_range: float | None = None,
+         valid: ArrayLike | None = None, per_band: bool = False) -> float | np.ndarray:
     """Mean structural similarity index (Wang et al., IEEE TIP 2004).
 
     The parameters of the paper: a Gaussian window of sigma 1.5 (truncated at
@@ -344,7 +348,8 @@ def _ssim_map(x, y, c1, c2):
 # --------------------------------------------------------------------------
 
 
-def ergas(reference, estimate, scale, *, valid=None, per_band=False):
+def ergas(reference: ArrayLike, estimate: ArrayLike, scale: float, *, valid: ArrayLike | None = None,
+          per_band: bool = False) -> float | np.ndarray:
     """Relative dimensionless global error in synthesis (Wald 2002).
 
     ``ERGAS = 100 (h / l) sqrt(mean_k(RMSE_k^2 / mu_k^2))`` with ``h / l =
@@ -423,7 +428,7 @@ def _angle_map(ref, est, mask):
     return angle
 
 
-def sam_map(reference, estimate, *, valid=None):
+def sam_map(reference: ArrayLike, estimate: ArrayLike, *, valid: ArrayLike | None = None) -> np.ndarray:
     """Per-pixel spectral angle (Kruse et al., RSE 1993) in degrees.
 
     ``angle = arccos(<r, e> / (|r| |e|))`` between the reference spectrum
@@ -454,7 +459,7 @@ def sam_map(reference, estimate, *, valid=None):
     return _angle_map(ref, est, mask)
 
 
-def sam(reference, estimate, *, valid=None):
+def sam(reference: ArrayLike, estimate: ArrayLike, *, valid: ArrayLike | None = None) -> float:
     """Mean spectral angle mapper (Kruse et al., RSE 1993) in degrees.
 
     The per-pixel angle of :func:`sam_map` averaged over the pixels valid in
@@ -495,7 +500,8 @@ def sam(reference, estimate, *, valid=None):
 # --------------------------------------------------------------------------
 
 
-def q_index(reference, estimate, *, valid=None, block_size=8, per_band=False):
+def q_index(reference: ArrayLike, estimate: ArrayLike, *, valid: ArrayLike | None = None,
+            block_size: int = 8, per_band: bool = False) -> float | np.ndarray:
     """Universal image quality index Q (Wang & Bovik, IEEE SPL 2002).
 
     In each ``block_size x block_size`` window, sliding by one pixel as in the
@@ -538,15 +544,7 @@ def q_index(reference, estimate, *, valid=None, block_size=8, per_band=False):
     ParameterError
         ``block_size`` not an integer >= 2.
     """
-    if (
-        isinstance(block_size, bool)
-        or not isinstance(block_size, (int, np.integer))
-        or block_size < 2
-    ):
-        raise ParameterError(
-            f"The 'block_size' parameter must be an integer of at least 2, got {block_size!r}"
-        )
-    k = int(block_size)
+    k = check_int(block_size, "block_size", 2)
     ref, est, mask = _prepare(reference, estimate, valid)
     rows, cols = ref.shape[1:]
     if rows < k or cols < k:
@@ -613,8 +611,9 @@ class ConsistencyError(NamedTuple):
 
 
 def consistency_error(
-    low_res, output, scale, *, degradation="bicubic", sigma=None, valid=None
-):
+    low_res: ArrayLike, output: ArrayLike, scale: int, *, degradation: str = "bicubic",
+    sigma: float | None = None, valid: ArrayLike | None = None,
+) -> ConsistencyError:
     """How far degrading the magnified output is from the low-res input.
 
     Computes ``d = degrade(output, scale, degradation, sigma) - low_res``

@@ -34,7 +34,7 @@ def _neighbour_sum(a):
     return out
 
 
-def fill_invalid(image, valid, distance=FILL_DISTANCE):
+def fill_invalid(image: np.ndarray, valid: np.ndarray, distance: int = FILL_DISTANCE) -> np.ndarray:
     """Replace invalid pixels by iterated means of valid neighbours.
 
     Parameters

@@ -15,9 +15,12 @@ from __future__ import annotations
 
 import math
 from functools import lru_cache
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
+from .._validation import check_scale, crop_to_multiple, working_dtype
 from ..enums import Degradation
 from ..errors import InputError, ParameterError
 
@@ -35,7 +38,7 @@ __all__ = [
 KEYS_A = -0.5
 
 
-def keys_kernel(x, a=KEYS_A):
+def keys_kernel(x: ArrayLike, a: float = KEYS_A) -> np.ndarray:
     """Cubic convolution kernel of Keys (IEEE TASSP 29(6), 1981).
 
     Parameters
@@ -57,7 +60,7 @@ def keys_kernel(x, a=KEYS_A):
     return np.where(x <= 1.0, near, np.where(x < 2.0, far, 0.0))
 
 
-def default_sigma(scale):
+def default_sigma(scale: int) -> float:
     """Default Gaussian PSF width in high-res pixels for a scale factor.
 
     A Gaussian whose modulation transfer at the low-res Nyquist frequency is
@@ -66,22 +69,6 @@ def default_sigma(scale):
     ``exp(-2 pi^2 sigma^2 / (2 s)^2) = 0.3``.
     """
     return float(scale) * math.sqrt(-2.0 * math.log(0.3)) / math.pi
-
-
-def check_scale(scale):
-    """Validate an integer scale factor in 2..8 and return it as ``int``."""
-    if isinstance(scale, bool) or not isinstance(scale, (int, np.integer)):
-        if isinstance(scale, (float, np.floating)) and float(scale).is_integer():
-            scale = int(scale)
-        else:
-            raise ParameterError(
-                f"The 'scale' parameter must be an integer from 2 to 8, got {scale!r}"
-            )
-    if not 2 <= int(scale) <= 8:
-        raise ParameterError(
-            f"The 'scale' parameter must be an integer from 2 to 8, got {scale!r}"
-        )
-    return int(scale)
 
 
 @lru_cache(maxsize=64)
@@ -112,7 +99,9 @@ def _degradation_taps(scale, model, sigma):
     return w / w.sum(), int(offsets[first])
 
 
-def degradation_taps(scale, model="bicubic", sigma=None):
+def degradation_taps(
+    scale: int, model: str = "bicubic", sigma: float | None = None
+) -> tuple[np.ndarray, int]:
     """Return ``(weights, start)`` of the separable degradation filter.
 
     Low-res pixel ``i`` is ``sum_t weights[t] * x[scale*i + start + t]``
@@ -142,7 +131,7 @@ def _check_sigma(scale, model, sigma):
     return sigma
 
 
-def degradation_margin(scale, model="bicubic", sigma=None):
+def degradation_margin(scale: int, model: str = "bicubic", sigma: float | None = None) -> tuple[int, int]:
     """High-res pixels of context the degradation needs on each side of a block.
 
     Returns ``(left, right)``: pixel ``s*i`` needs ``left`` pixels before it
@@ -154,7 +143,8 @@ def degradation_margin(scale, model="bicubic", sigma=None):
     return left, right
 
 
-def degrade_valid(padded, scale, model="bicubic", sigma=None, margin=None):
+def degrade_valid(padded: ArrayLike, scale: int, model: str = "bicubic", sigma: float | None = None,
+                  margin: int | None = None) -> np.ndarray:
     """Degrade an array that carries ``margin`` high-res pixels of context.
 
     ``padded`` has shape ``(s*h + 2*margin, s*w + 2*margin)`` (leading axes
@@ -164,10 +154,10 @@ def degrade_valid(padded, scale, model="bicubic", sigma=None, margin=None):
     if margin is None:
         margin = max(degradation_margin(scale, model, sigma))
     out = np.asarray(padded)
-    dtype = _work_dtype(out)
+    dtype = working_dtype(out)
     for axis in (-2, -1):
         n_out = (out.shape[axis] - 2 * margin) // scale
-        acc = None
+        acc: Any = None
         for t, wt in enumerate(w):
             first = margin + start + t
             sl = [slice(None)] * out.ndim
@@ -179,20 +169,7 @@ def degrade_valid(padded, scale, model="bicubic", sigma=None, margin=None):
     return out.astype(dtype, copy=False)
 
 
-def _work_dtype(a):
-    return np.dtype(np.float32) if a.dtype == np.float32 else np.dtype(np.float64)
-
-
-def crop_to_multiple(image, scale):
-    """Crop the last two axes to a multiple of ``scale`` (bottom and right)."""
-    scale = check_scale(scale)
-    image = np.asarray(image)
-    rows = image.shape[-2] - image.shape[-2] % scale
-    cols = image.shape[-1] - image.shape[-1] % scale
-    return image[..., :rows, :cols]
-
-
-def degrade(image, scale, model="bicubic", sigma=None):
+def degrade(image: ArrayLike, scale: int, model: str = "bicubic", sigma: float | None = None) -> np.ndarray:
     """Degrade a high-res image to low resolution.
 
     Parameters
@@ -228,7 +205,7 @@ def degrade(image, scale, model="bicubic", sigma=None):
         )
     if image.shape[-2] == 0 or image.shape[-1] == 0:
         raise InputError(f"The image must not be empty, got shape {image.shape}")
-    image = image.astype(_work_dtype(image), copy=False)
+    image = image.astype(working_dtype(image), copy=False)
     margin = max(degradation_margin(scale, model, sigma))
     pad = [(0, 0)] * (image.ndim - 2) + [(margin, margin)] * 2
     return degrade_valid(np.pad(image, pad, mode="symmetric"), scale, model, sigma, margin)
@@ -255,7 +232,7 @@ def _upscale_taps(scale):
 UPSCALE_MARGIN = 2
 
 
-def upscale_valid(padded, scale, margin=UPSCALE_MARGIN):
+def upscale_valid(padded: ArrayLike, scale: int, margin: int = UPSCALE_MARGIN) -> np.ndarray:
     """Bicubic interpolation of the interior of an array with ``margin`` of context.
 
     ``padded`` has shape ``(h + 2*margin, w + 2*margin)`` on its last two
@@ -263,7 +240,7 @@ def upscale_valid(padded, scale, margin=UPSCALE_MARGIN):
     """
     w, first = _upscale_taps(scale)
     out = np.asarray(padded)
-    dtype = _work_dtype(out)
+    dtype = working_dtype(out)
     for axis in (-2, -1):
         n = out.shape[axis] - 2 * margin
         shape = list(out.shape)
@@ -284,7 +261,7 @@ def upscale_valid(padded, scale, margin=UPSCALE_MARGIN):
     return out
 
 
-def upscale_bicubic(image, scale):
+def upscale_bicubic(image: ArrayLike, scale: int) -> np.ndarray:
     """Bicubic interpolation by an integer factor, pixel centres aligned.
 
     Parameters
@@ -301,7 +278,7 @@ def upscale_bicubic(image, scale):
     image = np.asarray(image)
     if image.ndim < 2 or image.shape[-2] == 0 or image.shape[-1] == 0:
         raise InputError(f"The image must be a non-empty 2-D array, got shape {image.shape}")
-    image = image.astype(_work_dtype(image), copy=False)
+    image = image.astype(working_dtype(image), copy=False)
     m = UPSCALE_MARGIN
     pad = [(0, 0)] * (image.ndim - 2) + [(m, m)] * 2
     return upscale_valid(np.pad(image, pad, mode="symmetric"), scale, m)
@@ -326,7 +303,7 @@ def _rescale_matrix(n_in, n_out, factor):
     return m
 
 
-def rescale(image, factor):
+def rescale(image: ArrayLike, factor: float) -> np.ndarray:
     """Resample a 2-D image by a real factor with an antialiased Keys kernel.
 
     Used to make extra training copies of a reference at slightly smaller
@@ -346,7 +323,7 @@ def rescale(image, factor):
         float32 for float32 input, float64 otherwise.
     """
     image = np.asarray(image)
-    dtype = _work_dtype(image)
+    dtype = working_dtype(image)
     if not (math.isfinite(factor) and factor > 0):
         raise ParameterError(f"The 'factor' parameter must be a positive number, got {factor!r}")
     if factor == 1:

@@ -24,8 +24,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from numpy.typing import ArrayLike
 
-from ..errors import InputError, ParameterError
+from .._validation import check_float
+from ..errors import InputError
 
 __all__ = ["guard_spectra", "DEFAULT_MAX_ANGLE", "DEFAULT_MIN_GAIN"]
 
@@ -39,8 +41,8 @@ DEFAULT_MAX_ANGLE = 2.0
 DEFAULT_MIN_GAIN = 0.5
 
 
-def guard_spectra(output, base, valid=None, *, max_angle=DEFAULT_MAX_ANGLE,
-                  min_gain=DEFAULT_MIN_GAIN):
+def guard_spectra(output: ArrayLike, base: ArrayLike, valid: ArrayLike | None = None, *,
+                  max_angle: float = DEFAULT_MAX_ANGLE, min_gain: float = DEFAULT_MIN_GAIN) -> np.ndarray:
     """Limit how far per-band detail turns and darkens each pixel's spectrum.
 
     For every pixel with interpolated spectrum ``b`` (norm ``|b|``, direction
@@ -85,10 +87,8 @@ def guard_spectra(output, base, valid=None, *, max_angle=DEFAULT_MAX_ANGLE,
             "The 'output' and 'base' arrays must have the same shape (bands, ...), got "
             f"{output.shape} and {base.shape}"
         )
-    if isinstance(max_angle, bool) or not (0 <= float(max_angle) < 90):
-        raise ParameterError(f"The 'max_angle' parameter must be in [0, 90) degrees, got {max_angle!r}")
-    if isinstance(min_gain, bool) or not (0 <= float(min_gain) <= 1):
-        raise ParameterError(f"The 'min_gain' parameter must be in [0, 1], got {min_gain!r}")
+    max_angle = check_float(max_angle, "max_angle", 0, 90, high_open=True)
+    min_gain = check_float(min_gain, "min_gain", 0, 1)
     dtype = output.dtype if output.dtype.kind == "f" else np.dtype(np.float64)
     result = output.astype(dtype, copy=True)
     if output.shape[0] < 2:

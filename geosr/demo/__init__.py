@@ -1,1 +1,56 @@
-"""The demo scenario: an invented river valley, degraded, magnified and shown side by side."""
+"""The demo scenario: an invented river valley, degraded, magnified and shown side by side.
+
+:func:`run_demo` writes the 3 m "truth" (:func:`make_scene`), the 9 m input
+made from it with :func:`geosr.core.resample.degrade` (:func:`degrade_scene`),
+the input magnified x3 by the shipped model, and a PNG that shows the same
+detail crop by nearest neighbour, bicubic, geosr and the truth side by side
+(:mod:`geosr.demo.quicklook`).
+"""
+
+from .landcover import (
+    BANDS,
+    LANDCOVER,
+    NODATA,
+    REFLECTANCE_SCALE,
+    SPECTRA,
+    VEGETATION,
+    WATER,
+)
+from .quicklook import CAPTION, detail_window, quicklook_figure, rmse, write_quicklook
+from .run import run_demo
+from .scene import (
+    CRS,
+    PIXEL,
+    SCALE,
+    SIZE,
+    DemoScene,
+    degrade_scene,
+    make_scene,
+    read_scene,
+    write_scene,
+)
+
+__all__ = [
+    "BANDS",
+    "CAPTION",
+    "CRS",
+    "LANDCOVER",
+    "NODATA",
+    "PIXEL",
+    "REFLECTANCE_SCALE",
+    "SCALE",
+    "SIZE",
+    "SPECTRA",
+    "VEGETATION",
+    "WATER",
+    "DemoScene",
+    "degrade_scene",
+    "detail_window",
+    "make_scene",
+    "quicklook_figure",
+    "read_scene",
+    "rmse",
+    "run_demo",
+    "write_quicklook",
+    "write_scene",
+]

@@ -139,7 +139,7 @@ def ground_sample_distance(crs, transform, width, height):
     pc = _proj(crs)
     if pc is None or not pc.axis_info:
         return None
-    a, b, c, d, e, f = transform.a, transform.b, transform.c, transform.d, transform.e, transform.f
+    a, b, d, e = transform.a, transform.b, transform.d, transform.e
     if pc.is_geographic:
         geod = pc.get_geod()
         col, row = width / 2.0, height / 2.0

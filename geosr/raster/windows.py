@@ -14,6 +14,7 @@ import dataclasses
 import numpy as np
 from rasterio.windows import Window
 
+from .._validation import MIN_CHUNK
 from ..errors import ParameterError
 
 __all__ = [
@@ -24,10 +25,6 @@ __all__ = [
     "halo_read",
     "pad_symmetric",
 ]
-
-#: Smallest block side in source pixels (common practice: below this the
-#: halo read costs more than the block itself).
-MIN_CHUNK = 16
 
 
 @dataclasses.dataclass(frozen=True)

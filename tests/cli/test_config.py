@@ -3,7 +3,6 @@ command-line options win, the shipped example configs are valid."""
 
 from __future__ import annotations
 
-import inspect
 import sys
 from pathlib import Path
 
@@ -12,8 +11,8 @@ from click.testing import CliRunner
 
 import geosr.pipeline.magnify
 from geosr.cli import options
-from geosr.cli.main import geosr as cli
 from geosr.cli.config import Key, check_value, load_config, read_toml
+from geosr.cli.main import geosr as cli
 from geosr.errors import ParameterError
 
 if sys.version_info >= (3, 11):
@@ -166,16 +165,11 @@ def test_check_value_key_value_forms():
 
 # --------------------------------------------------- through the command line
 @pytest.fixture
-def calls(monkeypatch):
-    """Record how the CLI calls magnify_raster (its wiring, not the library)."""
-    seen = []
-
-    def record(*args, **kwargs):
-        seen.append(dict(kwargs, model=args[2]))
-
-    record.__signature__ = inspect.signature(geosr.pipeline.magnify.magnify_raster)
-    monkeypatch.setattr(geosr.pipeline.magnify, "magnify_raster", record)
-    return seen
+def calls(recorder):
+    """Record how the CLI calls magnify_raster (its wiring, not the library):
+    the keywords, and the model as ``"model"``."""
+    return recorder(geosr.pipeline.magnify, "magnify_raster",
+                    keep=lambda args, kwargs: dict(kwargs, model=args[2]))
 
 
 def magnify(*args):
@@ -239,7 +233,7 @@ def test_both_alternatives_in_the_file_are_an_error(tmp_path, calls):
 @pytest.mark.parametrize(
     "text, needles",
     [
-        ("scale = 9\n", ["'scale'", str("c.toml"), "integer from 2 to 8", "9"]),
+        ("scale = 9\n", ["'scale'", "c.toml", "integer from 2 to 8", "9"]),
         ("chunk = 8\nscale = 2\n", ["'chunk'", "at least 16"]),
         ('scale = 2\nco = ["COMPRESS"]\n', ["'co'", "KEY=VALUE"]),
         ('scale = 2\nscheduler = "http://x"\n', ["'scheduler'"]),

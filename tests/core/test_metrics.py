@@ -8,7 +8,6 @@ from scipy import ndimage
 from skimage import data
 from skimage.metrics import peak_signal_noise_ratio, structural_similarity
 
-from geosr.errors import InputError, ParameterError
 from geosr.core.metrics import (
     consistency_error,
     ergas,
@@ -19,6 +18,7 @@ from geosr.core.metrics import (
     ssim,
 )
 from geosr.core.resample import degrade
+from geosr.errors import InputError, ParameterError
 
 
 def _sk_ssim(x, y, data_range, **kw):

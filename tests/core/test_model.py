@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 from skimage import color, data
 
-from geosr.errors import InputError, ModelError, NotFittedError, ParameterError
 from geosr.core.model import CoupledDictionary
-from geosr.modelfile import load_models, save_models
 from geosr.core.resample import crop_to_multiple, degrade, upscale_bicubic
+from geosr.errors import InputError, ModelError, NotFittedError, ParameterError
+from geosr.modelfile import load_models, save_models
 
 
 def luminance(rgb):
@@ -299,8 +299,8 @@ def _tiny_tiles(rng, n_tiles, t, s, window=81):
 def test_image_level_fit_is_the_least_squares_solution():
     # Reference: numpy.linalg.lstsq on the explicit matrix of the overlapped objective
     # (fewer than five tiles, so nothing is held out and CG runs to convergence).
-    from geosr.core.model import _refine_high_dictionary
     from geosr.core.features import overlap_average
+    from geosr.core.learn import refine_high_dictionary
     from geosr.core.sparse import omp_codes
 
     rng = np.random.default_rng(3)
@@ -308,7 +308,7 @@ def test_image_level_fit_is_the_least_squares_solution():
     kernel, dictionary = _tiny_coder(rng, k)
     tiles = _tiny_tiles(rng, 3, t, s)
     start = np.zeros(((3 * s) ** 2, k), dtype=np.float32)
-    high, kept = _refine_high_dictionary(start, dictionary, kernel, tiles, 2, s, n_iter=500)
+    high, kept = refine_high_dictionary(start, dictionary, kernel, tiles, 2, s, n_iter=500)
     assert kept > 0
     # The explicit linear map from the dictionary's entries to the averaged tile details.
     columns = []
@@ -330,7 +330,7 @@ def test_image_level_fit_is_the_least_squares_solution():
 
 
 def test_image_level_fit_never_worsens_the_held_out_tiles():
-    from geosr.core.model import _refine_high_dictionary
+    from geosr.core.learn import refine_high_dictionary
 
     rng = np.random.default_rng(5)
     s, t, k = 2, 4, 6
@@ -338,7 +338,7 @@ def test_image_level_fit_never_worsens_the_held_out_tiles():
     # Pure-noise details: nothing generalises, so the held-out tiles stop it at once.
     tiles = _tiny_tiles(rng, 10, t, s)
     start = rng.normal(size=((3 * s) ** 2, k)).astype(np.float32) * 1e-3
-    high, kept = _refine_high_dictionary(start, dictionary, kernel, tiles, 2, s)
+    high, kept = refine_high_dictionary(start, dictionary, kernel, tiles, 2, s)
     assert 0 <= kept <= 30 and high.shape == start.shape and np.isfinite(high).all()
 
 
@@ -375,7 +375,7 @@ def reference_anchors(features, dictionary_low):
 
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 def test_anchor_search_matches_argmax_of_correlations(dtype):
-    from geosr.core.model import _nearest_anchors
+    from geosr.core.anchored import nearest_anchors
 
     rng = np.random.default_rng(1)
     atoms = rng.standard_normal((30, 200))
@@ -388,7 +388,7 @@ def test_anchor_search_matches_argmax_of_correlations(dtype):
     mid += rng.standard_normal(mid.shape) * 1e-9
     flip = (atoms[:, 100:150] - atoms[:, 150:200]).T * 3.0
     features = np.concatenate([features, mid, flip, np.zeros((5, 30))]).astype(dtype)
-    got = _nearest_anchors(features, atoms)
+    got = nearest_anchors(features, atoms)
     # Float32 features are ordered by their exact (float64) correlations.
     expect = reference_anchors(features.astype(np.float64), atoms.astype(np.float64))
     np.testing.assert_array_equal(got, expect)
@@ -403,4 +403,7 @@ def test_anchored_prediction_matches_per_patch_projection():
     anchors = reference_anchors(features, model.dictionary_low_.astype(np.float64))
     proj = model.projections_.astype(np.float64)
     expect = np.stack([proj[a] @ f for a, f in zip(anchors, features)])
-    np.testing.assert_allclose(model._predict(features), expect, rtol=1e-12, atol=1e-12)
+    from geosr.core.synthesis import predict
+
+    np.testing.assert_allclose(predict(model._params(), model._arrays(), features), expect,
+                               rtol=1e-12, atol=1e-12)

@@ -5,7 +5,6 @@ import warnings
 import numpy as np
 import pytest
 
-from geosr.errors import InputError, ParameterError
 from geosr.core.resample import (
     crop_to_multiple,
     default_sigma,
@@ -17,6 +16,7 @@ from geosr.core.resample import (
     upscale_bicubic,
     upscale_valid,
 )
+from geosr.errors import InputError, ParameterError
 
 
 def _resize_right():
@@ -74,7 +74,7 @@ def test_upscale_matches_resize_right(scale):
 def test_upscale_matches_gdal_cubic_inside(scale):
     # GDAL's cubic resampling (through rasterio) uses the Keys kernel with a = -0.5;
     # away from the border (GDAL extends edges differently) the grids agree.
-    rasterio = pytest.importorskip("rasterio")
+    pytest.importorskip("rasterio")
     from rasterio.enums import Resampling
     from rasterio.io import MemoryFile
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from geosr.errors import InputError, ParameterError
 from geosr.core.spectral import DEFAULT_MAX_ANGLE, DEFAULT_MIN_GAIN, guard_spectra
+from geosr.errors import InputError, ParameterError
 
 
 def _angle(a, b):

@@ -11,50 +11,12 @@ import pytest
 from geosr import _validation as v
 from geosr.errors import ParameterError
 
-
-def _first_module(*names):
-    """The first importable module of ``names`` (modules are being moved)."""
-    import importlib
-
-    for name in names:
-        try:
-            return importlib.import_module(name)
-        except ImportError:
-            continue
-    pytest.skip(f"none of {names} can be imported")
-
-
 # --------------------------------------------------------------------------
 # limits and import cost
 
 
 def test_limits():
     assert (v.SCALE_MIN, v.SCALE_MAX, v.MIN_CHUNK) == (2, 8, 16)
-
-
-def test_limits_match_the_existing_copies():
-    # The copies the shared constants replace must agree with them while
-    # they exist (each import is skipped once its module has moved).
-    options = pytest.importorskip("geosr.cli.options")
-    assert (options.SCALE_MIN, options.SCALE_MAX, options.MIN_CHUNK) == (2, 8, 16)
-    try:
-        from geosr.raster.windows import MIN_CHUNK
-    except ImportError:
-        pass
-    else:
-        assert MIN_CHUNK == v.MIN_CHUNK
-
-
-def test_check_scale_matches_resample():
-    resample = _first_module("geosr.core.resample", "geosr.resample")
-    for value in (2, 3, 8, np.int64(4), 3.0):
-        assert v.check_scale(value) == resample.check_scale(value)
-    for value in (1, 9, 2.5, "3", True, None):
-        with pytest.raises(ParameterError) as old:
-            resample.check_scale(value)
-        with pytest.raises(ParameterError) as new:
-            v.check_scale(value)
-        assert str(new.value) == str(old.value)
 
 
 def test_import_is_cheap():
@@ -267,7 +229,7 @@ def test_random_state_from_random_state():
     a = v.check_random_state(np.random.RandomState(5))
     b = v.check_random_state(np.random.RandomState(5))
     np.testing.assert_array_equal(_draws(a), _draws(b))
-    # seeded with four 31-bit draws of the RandomState (geosr.sparse._rng)
+    # seeded with four 31-bit draws of the RandomState (as geosr.core.sparse always has)
     ref = np.random.default_rng(np.random.RandomState(5).randint(0, 2**31 - 1, size=4))
     np.testing.assert_array_equal(_draws(v.check_random_state(np.random.RandomState(5))), _draws(ref))
     rs = np.random.RandomState(5)
@@ -378,14 +340,6 @@ def test_crop_to_multiple_takes_lists_and_checks_scale():
             v.crop_to_multiple(np.zeros((10, 10)), bad)
         with pytest.raises(ParameterError, match="'scale' parameter"):
             v.cropped_shape(10, 10, bad)
-
-
-def test_crop_to_multiple_matches_resample():
-    resample = _first_module("geosr.core.resample", "geosr.resample")
-    image = np.random.default_rng(0).random((3, 29, 31))
-    for scale in range(2, 9):
-        expected = resample.crop_to_multiple(image, scale)
-        np.testing.assert_array_equal(v.crop_to_multiple(image, scale), expected)
 
 
 # --------------------------------------------------------------------------

@@ -36,7 +36,8 @@ from pathlib import Path
 
 import numpy as np
 import rasterio
-from rasterio.windows import Window, transform as window_transform
+from rasterio.windows import Window
+from rasterio.windows import transform as window_transform
 
 HERE = Path(__file__).resolve().parent
 DEFAULT_SHARED = HERE.parent.parent.parent / "shared" / "data"

@@ -213,7 +213,7 @@ def model_pickled(env):
 
 
 def model_two_bands(env):
-    from geosr.modelfile import save_models, load_models
+    from geosr.modelfile import load_models, save_models
 
     model = load_models(env.model)[0]
     path = env.work / "two-bands.npz"

@@ -9,8 +9,10 @@ from rasterio.crs import CRS
 from geosr._version import __version__
 from geosr.raster.stac import EXTENSIONS, stac_item, stac_path, write_stac_item
 
+UTM_18N = CRS.from_epsg(32618)
 
-def _item(tmp_path, crs=CRS.from_epsg(32618), **kw):
+
+def _item(tmp_path, crs=UTM_18N, **kw):
     args = dict(dst=tmp_path / "out" / "scene_x2.tif", src=str(tmp_path / "in" / "scene.tif"),
                 width=200, height=100, count=3, crs=crs, transform=Affine(15, 0, 500000, 0, -15, 4200000),
                 scale=2, method="anchored", model_sha256="ab" * 32, created="2024-05-01T12:00:00Z")

@@ -5,7 +5,14 @@ import pytest
 
 from geosr.errors import ParameterError
 from geosr.raster.blocks import read_block
-from geosr.raster.windows import MIN_CHUNK, Block, block_grid, check_chunk_size, halo_read, pad_symmetric
+from geosr.raster.windows import (
+    MIN_CHUNK,
+    Block,
+    block_grid,
+    check_chunk_size,
+    halo_read,
+    pad_symmetric,
+)
 
 from helpers import camera
 
