@@ -32,7 +32,7 @@ from geosr.pipeline.magnify import magnify_raster
 model = default_model(2)
 base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 t = time.perf_counter()
-r = magnify_raster(sys.argv[1], sys.argv[2], model, quiet=True, overwrite=True)
+r = magnify_raster(sys.argv[1], sys.argv[2], model, overwrite=True)
 dt = time.perf_counter() - t
 print(json.dumps({"before_kib": base, "peak_kib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss,
                   "seconds": dt, "out_mpx": r.width * r.height * r.count / 1e6, "chunk": r.chunk_size}))

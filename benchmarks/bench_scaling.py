@@ -28,7 +28,7 @@ from geosr.pipeline.magnify import magnify_raster  # noqa: E402
 
 def timed(src, dst, model, **kw):
     t0 = time.perf_counter()
-    magnify_raster(src, dst, model, quiet=True, overwrite=True, **kw)
+    magnify_raster(src, dst, model, overwrite=True, **kw)
     return time.perf_counter() - t0
 
 

@@ -46,7 +46,7 @@ def gdal_cubic(src, dst, like):
 
 def geosr_run(src, dst, model):
     t0 = time.perf_counter()
-    magnify_raster(src, dst, model, quiet=True, overwrite=True)
+    magnify_raster(src, dst, model, overwrite=True)
     return time.perf_counter() - t0
 
 

@@ -38,7 +38,7 @@ def main(argv=None):
     report_dir = out / "report"
 
     # Without a model, the model shipped for this scale is assessed.
-    geosr.assess_raster(args.reference, report_dir, args.scale, overwrite=True, quiet=True)
+    geosr.assess_raster(args.reference, report_dir, args.scale, overwrite=True)
     print(f"report written to {report_dir}: {', '.join(sorted(p.name for p in report_dir.iterdir()))}")
 
     # metrics.json is keyed by method; each entry has an "overall" object and

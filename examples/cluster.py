@@ -30,7 +30,7 @@ DATA = Path(__file__).resolve().parents[1] / "tests" / "data"
 def magnify_on(address, src, dst, scale):
     """Magnify ``src`` with the cluster at ``address`` doing the block work."""
     result = geosr.magnify_raster(src, dst, scale=scale, scheduler=address, chunk_size=128,
-                                  overwrite=True, quiet=True)
+                                  overwrite=True)
     print(f"wrote {result.dst} ({result.width} x {result.height}) in {result.blocks} blocks "
           f"on {result.scheduler}, {result.seconds:.1f} s")
     with rasterio.open(dst) as ds:

@@ -52,7 +52,7 @@ def main(argv=None):
 
     # One call does the whole job: read in blocks with a halo, magnify, write
     # a tiled GeoTIFF with the georeferencing adjusted and provenance tags.
-    result = geosr.magnify_raster(args.src, dst, scale=args.scale, overwrite=True, quiet=True)
+    result = geosr.magnify_raster(args.src, dst, scale=args.scale, overwrite=True)
     print(f"wrote {result.dst} ({result.width} x {result.height}, {result.count} bands, "
           f"method {result.method}, {result.blocks} block(s), {result.seconds:.1f} s)")
 

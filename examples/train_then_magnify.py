@@ -65,7 +65,7 @@ def main(argv=None):
     models = geosr.train_from_rasters(
         references, args.scale, shared=True, method="anchored",
         n_atoms=64, n_iter=0, neighbours=256, max_samples=5_000,
-        random_state=0, quiet=True, output=model_path,
+        random_state=0, output=model_path,
     )
     model = models[0]
     print(f"trained {model.method} model x{model.scale} with {model.n_atoms} atoms "
@@ -73,7 +73,7 @@ def main(argv=None):
 
     # Magnify with the saved model: the file records its scale and method.
     dst = out / f"{args.target.stem}-x{args.scale}.tif"
-    result = geosr.magnify_raster(target, dst, model=model_path, overwrite=True, quiet=True)
+    result = geosr.magnify_raster(target, dst, model=model_path, overwrite=True)
     print(f"wrote {result.dst}: {result.width} x {result.height}, model {result.model_sha256[:12]}...")
 
     # The declared fill stays nodata: the output mask is the source mask

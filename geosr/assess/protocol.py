@@ -27,20 +27,7 @@ import numpy as np
 from .._validation import check_bool, check_int
 from .._version import __version__
 from ..core import metrics as _metrics
-from ..enums import Degradation, Method
-from ..errors import InputError, ParameterError
-from ..raster.io import check_bands
 from ..core.nodata import fill_invalid
-from ..core.spectral import guard_spectra
-from .report import HIGHER_IS_BETTER, METHODS, prepare_destination, write_report
-from ..pipeline.plan import (
-    ModelChoice,
-    check_models,
-    model_method,
-    model_sha,
-    resolve_models,
-    self_training_params,
-)
 from ..core.resample import (
     check_scale,
     crop_to_multiple,
@@ -49,6 +36,19 @@ from ..core.resample import (
     degradation_taps,
     degrade,
 )
+from ..core.spectral import guard_spectra
+from ..enums import Degradation, Method
+from ..errors import InputError, ParameterError
+from ..pipeline.plan import (
+    ModelChoice,
+    check_models,
+    model_method,
+    model_sha,
+    resolve_models,
+    self_training_params,
+)
+from ..raster.io import check_bands
+from .report import HIGHER_IS_BETTER, METHODS, prepare_destination, write_report
 
 __all__ = ["assess_raster", "METHODS", "HIGHER_IS_BETTER"]
 
@@ -458,7 +458,7 @@ def assess_raster(
             f"runs in memory in this process, got workers={workers!r}, scheduler={scheduler!r}"
         )
     crop_size = check_int(crop_size, "crop_size", 8)
-    report_dir = prepare_destination(report_dir, overwrite)
+    folder = prepare_destination(report_dir, overwrite)
     ref = _read_reference(reference, bands, s)
     n_bands, rows, cols = ref.data.shape
     log.info("degrading %d band(s) of %d x %d by %d (%s)", n_bands, rows, cols, s, deg_name)
@@ -478,6 +478,6 @@ def assess_raster(
                        "count": len(choice.models), "consistency": bool(consistency),
                        "ensemble": bool(ensemble), "spectral_guard": guarded}
     result["protocol"] = _protocol(ref, low, s, deg_name, sigma_used, data_range)
-    write_report(report_dir, result, ref.data, outputs, low.eval_valid, crop_size, ref.band_names)
-    log.info("wrote %s", report_dir)
+    write_report(folder, result, ref.data, outputs, low.eval_valid, crop_size, ref.band_names)
+    log.info("wrote %s", folder)
     return result

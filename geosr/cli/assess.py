@@ -75,25 +75,26 @@ def assess(ctx, reference, report_dir, scale, model, self_train, train_atoms, tr
     if training and not self_train:
         raise click.UsageError("--atoms and --samples only apply with --self-train", ctx=ctx)
     from ..assess.protocol import assess_raster
+    from .progress import library_output
 
-    result = assess_raster(
-        reference,
-        report_dir,
-        scale,
-        model=model,
-        self_train=self_train,
-        method=method,
-        degradation=degradation,
-        sigma=sigma,
-        bands=list(bands) if bands else None,
-        consistency=consistency,
-        ensemble=ensemble,
-        spectral_guard=spectral_guard,
-        training=training or None,
-        crop_size=crop_size,
-        overwrite=overwrite,
-        quiet=quiet,
-    )
+    with library_output(quiet):
+        result = assess_raster(
+            reference,
+            report_dir,
+            scale,
+            model=model,
+            self_train=self_train,
+            method=method,
+            degradation=degradation,
+            sigma=sigma,
+            bands=list(bands) if bands else None,
+            consistency=consistency,
+            ensemble=ensemble,
+            spectral_guard=spectral_guard,
+            training=training or None,
+            crop_size=crop_size,
+            overwrite=overwrite,
+        )
     options.report(ctx, f"geosr: {_summary(result, report_dir)}")
 
 

@@ -54,7 +54,10 @@ def demo(ctx, outdir, seed, size, model, quiet):
     def echo(message):
         options.report(ctx, f"geosr demo: {message}")
 
-    paths = run_demo(outdir, seed=seed, size=size, model=model, quiet=quiet, echo=echo)
+    from .progress import progress_bars
+
+    with progress_bars("magnify", quiet) as bar:
+        paths = run_demo(outdir, seed=seed, size=size, model=model, progress=bar, echo=echo)
     click.echo(f"truth (3 m, generated):    {paths['truth']}")
     click.echo(f"input (9 m, degraded x3):  {paths['input']}")
     click.echo(f"geosr output (x3):         {paths['output']}")

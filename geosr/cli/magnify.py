@@ -103,30 +103,35 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
         given = ", ".join(names[k] for k in training)
         raise click.UsageError(f"{given} only apply with --self-train, got them without it", ctx=ctx)
     from ..pipeline.magnify import magnify_raster
+    from .progress import library_output, progress_bars
 
-    result = magnify_raster(
-        src,
-        dst,
-        model,
-        scale=scale,
-        method=method,
-        chunk_size=chunk,
-        workers=workers,
-        scheduler=scheduler,
-        bands=list(bands) if bands else None,
-        overwrite=overwrite,
-        cog=cog,
-        creation_options=dict(creation_options) or None,
-        consistency=consistency,
-        ensemble=ensemble,
-        spectral_guard=spectral_guard,
-        stac=stac,
-        quiet=quiet,
-        self_train=self_train,
-        training=training or None,
-        max_output_bytes=max_output_bytes,
-        check_free_space=not no_space_check,
-    )
+    with library_output(quiet), progress_bars("magnify", quiet) as bar, \
+            progress_bars("train: collect", quiet) as train_bar:
+        if self_train and train_bar is not None:
+            training["progress"] = train_bar
+        result = magnify_raster(
+            src,
+            dst,
+            model,
+            scale=scale,
+            method=method,
+            chunk_size=chunk,
+            workers=workers,
+            scheduler=scheduler,
+            bands=list(bands) if bands else None,
+            overwrite=overwrite,
+            cog=cog,
+            creation_options=dict(creation_options) or None,
+            consistency=consistency,
+            ensemble=ensemble,
+            spectral_guard=spectral_guard,
+            stac=stac,
+            self_train=self_train,
+            training=training or None,
+            max_output_bytes=max_output_bytes,
+            check_free_space=not no_space_check,
+            progress=bar,
+        )
     options.report(ctx, f"geosr: wrote {_summary(result)}")
     for residual in result.consistency or ():
         if residual.rms is not None:

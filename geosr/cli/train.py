@@ -118,7 +118,8 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
             f"--sigma only applies to --degradation gaussian, got --degradation {degradation}",
             ctx=ctx,
         )
-    from ..pipeline.magnify import train_from_rasters
+    from ..pipeline.train import train_from_rasters
+    from .progress import library_output, progress_bars
 
     # CoupledDictionary parameters: only those given, the model has the defaults
     model_params = {
@@ -128,21 +129,22 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
                             ("neighbours", neighbours), ("high_fit", high_fit))
         if value is not None
     }
-    models = train_from_rasters(
-        list(references),
-        scale,
-        bands=list(bands) if bands else None,
-        shared=shared,
-        max_samples=max_samples,
-        method=method,
-        chunk_size=chunk,
-        workers=workers,
-        scheduler=scheduler,
-        random_state=random_state,
-        quiet=quiet,
-        output=output,
-        **model_params,
-    )
+    with library_output(quiet), progress_bars("train: collect", quiet) as bar:
+        models = train_from_rasters(
+            list(references),
+            scale,
+            bands=list(bands) if bands else None,
+            shared=shared,
+            max_samples=max_samples,
+            method=method,
+            chunk_size=chunk,
+            workers=workers,
+            scheduler=scheduler,
+            random_state=random_state,
+            output=output,
+            progress=bar,
+            **model_params,
+        )
     if shared:
         kind = "1 model shared by every band"
     else:

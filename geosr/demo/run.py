@@ -103,7 +103,7 @@ def run_demo(
     seed: int = 0,
     size: int = SIZE,
     model: object = None,
-    quiet: bool = False,
+    progress: Callable[[int, int], None] | None = None,
     echo: Callable[[str], object] | None = None,
 ) -> dict:
     """Generate the demo scene, magnify its coarse version x3, write a quick look.
@@ -123,8 +123,8 @@ def run_demo(
         Truth grid side in pixels (multiple of 3).
     model : str, os.PathLike, CoupledDictionary or None
         The model to magnify with; None uses the model shipped for x3.
-    quiet : bool
-        No progress from the magnification.
+    progress : callable, optional
+        Progress callback of the magnification (see ``magnify_raster``).
     echo : callable, optional
         Called with a progress line for each step; default: this module's
         logger at INFO level.
@@ -147,7 +147,8 @@ def run_demo(
     write_scene(paths["input"], coarse,
                 f"Demo input: the demo truth degraded x{SCALE} (antialiased bicubic).")
     say(f"magnifying the {coarse.data.shape[2]} x {coarse.data.shape[1]} input x{SCALE}")
-    magnify_raster(paths["input"], paths["output"], model, scale=SCALE, overwrite=True, quiet=quiet)
+    magnify_raster(paths["input"], paths["output"], model, scale=SCALE, overwrite=True,
+                   progress=progress)
     _write_comparison(paths["quicklook"], truth, coarse, paths["output"])
     paths["seconds"] = time.perf_counter() - start
     return paths

@@ -65,7 +65,7 @@ CONNECT_TIMEOUT = "20s"
 
 #: Objects shared by every task of a local run, by token (worker processes
 #: get theirs from the pool initializer).
-_SHARED = {}
+_SHARED: dict[str, Any] = {}
 
 
 def default_workers() -> int:
@@ -157,11 +157,9 @@ def resolve_scheduler(scheduler: str | Any = None, workers: int | None = None) -
             "The 'scheduler' parameter must be 'threads', 'processes', 'synchronous' or a "
             f"scheduler address such as 'tcp://host:8786', got {scheduler!r}"
         )
-    try:
-        from distributed import Client
-    except ImportError:  # pragma: no cover - distributed is a dependency
-        Client = ()
-    if Client and isinstance(scheduler, Client):
+    from distributed import Client
+
+    if isinstance(scheduler, Client):
         if workers is not None:
             raise ParameterError(
                 f"The 'workers' parameter must not be given with a client, got workers={workers}"
@@ -472,12 +470,11 @@ def run_tasks(
         raise ParameterError(f"The 'retries' parameter must be an integer from 0 to 100, got {retries!r}")
     spec = scheduler if isinstance(scheduler, SchedulerSpec) else resolve_scheduler(scheduler, workers)
     jobs = list(jobs)
-    if progress is not None:
-        progress = _Ticker(progress, len(jobs))
+    ticker = None if progress is None else _Ticker(progress, len(jobs))
     try:
         if spec.kind in _LOCAL_KINDS:
-            return _run_local(spec, func, jobs, shared, consume, retries, progress, label)
-        return _run_distributed(spec, func, jobs, shared, consume, retries, progress, label)
+            return _run_local(spec, func, jobs, shared, consume, retries, ticker, label)
+        return _run_distributed(spec, func, jobs, shared, consume, retries, ticker, label)
     except (GeosrError, KeyboardInterrupt):
         raise
     except Exception as exc:  # noqa: BLE001 - one clear error for the caller

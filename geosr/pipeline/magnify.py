@@ -31,9 +31,11 @@ from ..raster.io import (
     SourceInfo,
     TempFiles,
     check_destination,
-    check_free_space as _check_free_space,
     inspect_source,
     remove_stale_temps,
+)
+from ..raster.io import (
+    check_free_space as _check_free_space,
 )
 from ..raster.masks import MaskMode
 from ..raster.profiles import (

@@ -16,8 +16,8 @@ import numpy as np
 import rasterio
 from rasterio.errors import NotGeoreferencedWarning, RasterioError
 
-from ..errors import InputError
 from ..core.spectral import guard_spectra
+from ..errors import InputError
 from .masks import MaskMode, nearest_magnify, to_output_dtype
 from .windows import Block, halo_read, pad_symmetric
 

@@ -14,11 +14,11 @@ from rasterio.enums import Resampling
 from rasterio.io import MemoryFile
 
 from geosr import metrics
-from geosr.assess.protocol import METHODS, HIGHER_IS_BETTER, assess_raster, low_res_valid
-from geosr.errors import DestinationError, ModelError
+from geosr.assess.protocol import HIGHER_IS_BETTER, METHODS, assess_raster, low_res_valid
 from geosr.core.model import CoupledDictionary
-from geosr.modelfile import default_model_path
 from geosr.core.resample import degrade
+from geosr.errors import DestinationError, ModelError
+from geosr.modelfile import default_model_path
 
 DATA = Path(__file__).resolve().parents[2] / ".." / "shared" / "data"
 LANDSAT = DATA / "RGB.byte.tif"

@@ -16,9 +16,11 @@ from affine import Affine
 from click.testing import CliRunner
 
 import geosr.pipeline.magnify
+import geosr.pipeline.train
 from geosr._version import __version__
 from geosr.cli import options
 from geosr.cli.main import geosr as cli
+from geosr.cli.progress import ProgressBars
 from geosr.errors import DestinationError, InputError, ParameterError, RunError
 
 from helpers import camera
@@ -298,7 +300,6 @@ def test_assess_wiring(recorder):
     assert kw == {
         "model": None, "self_train": True, "method": None, "sigma": 1.2, "bands": [1, 2],
         "consistency": True, "ensemble": False, "spectral_guard": False, "overwrite": False,
-        "quiet": True,
         "training": {"n_atoms": 64}, "degradation": "gaussian", "crop_size": 64,
     }
     assert result.stderr == ""  # -q
@@ -323,7 +324,8 @@ def test_magnify_passes_every_option(recorder, tmp_path, model_file):
     assert kw["workers"] == 3 and kw["scheduler"] is None
     assert kw["creation_options"] == {"COMPRESS": "zstd", "PREDICTOR": "2"}
     assert kw["cog"] and kw["overwrite"] and kw["consistency"] and kw["ensemble"] and kw["stac"]
-    assert kw["max_output_bytes"] == 2 * 2**30 and kw["quiet"] and not kw["self_train"]
+    assert kw["max_output_bytes"] == 2 * 2**30 and not kw["self_train"]
+    assert kw["progress"] is None  # --quiet: no progress bar
 
 
 def _library_defaults(func):
@@ -338,6 +340,8 @@ def test_magnify_defaults_are_the_library_defaults(recorder):
     assert result.exit_code == 0, result.stderr
     (args, kw), = calls
     assert args == ("in.tif", "out.tif", None) and kw["scale"] == 3
+    bar = kw.pop("progress")  # the CLI's progress bar, drawn from the library's callback
+    assert isinstance(bar, ProgressBars) and bar.label == "magnify"
     assert kw["chunk_size"] == 1024 and kw["creation_options"] is None and kw["bands"] is None
     # every option left out gives the library's own default (the --max-output
     # help's 256G among them)
@@ -348,13 +352,15 @@ def test_magnify_defaults_are_the_library_defaults(recorder):
 
 
 def test_train_defaults_are_the_library_defaults(recorder, tmp_path):
-    defaults = _library_defaults(geosr.pipeline.magnify.train_from_rasters)
-    calls = recorder(geosr.pipeline.magnify, "train_from_rasters")
+    defaults = _library_defaults(geosr.pipeline.train.train_from_rasters)
+    calls = recorder(geosr.pipeline.train, "train_from_rasters")
     os.chdir(tmp_path)
     result = run("train", "a.tif", "-o", "m.npz", "-s", "2")
     assert result.exit_code == 0, result.stderr
     (args, kw), = calls
     assert args == (["a.tif"], 2)
+    bar = kw.pop("progress")
+    assert isinstance(bar, ProgressBars) and bar.label == "train: collect"
     assert kw == {**{k: defaults[k] for k in kw}, "output": "m.npz"}  # the --samples help's 100000
     assert result.stderr.strip().splitlines()[-1] == "geosr: wrote m.npz (1 model, one per band, x2)"
 
@@ -381,6 +387,8 @@ def test_self_train_options_go_to_training(recorder):
     assert result.exit_code == 0, result.stderr
     (_, kw), = calls
     assert kw["self_train"] is True
+    bar = kw["training"].pop("progress")  # the self-training stage has its own bar
+    assert isinstance(bar, ProgressBars) and bar.label == "train: collect"
     assert kw["training"] == {"n_atoms": 64, "max_samples": 5000, "degradation": "gaussian"}
 
 
@@ -393,7 +401,7 @@ def test_local_scheduler_names_combine_with_workers(recorder):
 
 
 def test_train_passes_model_parameters(recorder, tmp_path):
-    calls = recorder(geosr.pipeline.magnify, "train_from_rasters")
+    calls = recorder(geosr.pipeline.train, "train_from_rasters")
     os.chdir(tmp_path)
     result = run("train", "a.tif", "b.tif", "-o", "m.npz", "-s", "4", "--shared", "--method",
                  "sparse", "--degradation", "gaussian", "--sigma", "1.5", "--atoms", "128",
@@ -404,14 +412,14 @@ def test_train_passes_model_parameters(recorder, tmp_path):
     assert args == (["a.tif", "b.tif"], 4)
     assert kw == {
         "bands": [2], "shared": True, "random_state": 7, "chunk_size": 512, "workers": None,
-        "scheduler": None, "quiet": True, "output": "m.npz", "method": "sparse",
+        "scheduler": None, "progress": None, "output": "m.npz", "method": "sparse",
         "degradation": "gaussian", "sigma": 1.5, "n_atoms": 128, "sparsity": 2, "n_iter": 5,
         "neighbours": 256, "max_samples": 20000, "high_fit": "image",
     }
 
 
 def test_train_refuses_an_existing_model_without_overwrite(recorder, tmp_path):
-    calls = recorder(geosr.pipeline.magnify, "train_from_rasters")
+    calls = recorder(geosr.pipeline.train, "train_from_rasters")
     (tmp_path / "m.npz").write_bytes(b"old")
     os.chdir(tmp_path)
     assert_one_line_error(run("train", "a.tif", "-o", "m.npz", "-s", "2"), 1, "m.npz", "--overwrite")

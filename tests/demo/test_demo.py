@@ -209,10 +209,10 @@ def check_demo_files(paths, size):
 
 def test_run_demo_with_a_given_model(tmp_path, model_x3):
     lines = []
-    paths = demo.run_demo(tmp_path / "out", size=192, model=model_x3, quiet=True, echo=lines.append)
+    paths = demo.run_demo(tmp_path / "out", size=192, model=model_x3, echo=lines.append)
     check_demo_files(paths, 192)
     assert any("generating" in line for line in lines)
-    again = demo.run_demo(tmp_path / "out", size=192, model=model_x3, quiet=True)  # replaces
+    again = demo.run_demo(tmp_path / "out", size=192, model=model_x3)  # replaces
     assert again["output"] == paths["output"]
 
 

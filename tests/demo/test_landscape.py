@@ -166,7 +166,7 @@ def test_run_demo_logs_its_steps_without_an_echo(tmp_path, tiny_sparse_x3, caplo
     model = tmp_path / "m.npz"
     tiny_sparse_x3.save(model)
     with caplog.at_level(logging.INFO, logger="geosr.demo.run"):
-        demo.run_demo(tmp_path / "out", size=192, model=model, quiet=True)
+        demo.run_demo(tmp_path / "out", size=192, model=model)
     messages = [r.getMessage() for r in caplog.records if r.name == "geosr.demo.run"]
     assert messages[0].startswith("generating the invented valley (192 x 192")
     assert messages[1] == "magnifying the 64 x 64 input x3"

@@ -1,6 +1,5 @@
-"""The scheduling layer: local and distributed runs, streaming, retries, progress."""
+"""The scheduling layer: local and distributed runs, streaming, retries, progress callbacks."""
 
-import io
 import os
 import threading
 import time
@@ -9,7 +8,6 @@ import numpy as np
 import pytest
 
 from geosr.errors import DestinationError, InputError, ParameterError, RunError
-from geosr.parallel.progress import Progress, format_duration
 from geosr.parallel.schedule import resolve_scheduler, run_tasks
 
 
@@ -168,26 +166,6 @@ def test_local_cluster_run_and_a_killed_worker(tmp_path):
     assert (tmp_path / "died").exists()  # a worker really died mid-run
     assert sorted(got) == [(i, 10 * i) for i in range(12)]
     assert calls == [(i, 12) for i in range(13)]
-
-
-def test_progress_text_and_quiet():
-    out = io.StringIO()
-    with Progress(4, "magnify", stream=out) as bar:
-        for _ in range(4):
-            bar.update()
-    text = out.getvalue()
-    assert "magnify: 0/4 blocks (0%)" in text and "magnify: 4/4 blocks (100%)" in text
-    assert "blocks/s" in text and "in all" in text
-    mid = Progress(10, "train", stream=io.StringIO())
-    mid.done = 5
-    mid.start -= 10.0  # 5 blocks in 10 s: 0.5 blocks/s, 10 s left
-    assert mid.text() .endswith("0.50 blocks/s, 10 s left")
-    quiet = io.StringIO()
-    with Progress(3, stream=quiet, quiet=True) as bar:
-        bar.update(3)
-    assert quiet.getvalue() == ""
-    assert format_duration(42) == "42 s" and format_duration(185) == "3 min 05 s"
-    assert format_duration(7620) == "2 h 07 min" and format_duration(float("inf")) == "?"
 
 
 @pytest.mark.slow

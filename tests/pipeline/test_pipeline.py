@@ -8,8 +8,6 @@ import signal
 import subprocess
 import sys
 import textwrap
-import time
-import warnings
 
 import numpy as np
 import pytest
@@ -21,12 +19,17 @@ from rasterio.enums import ColorInterp, MaskFlags, Resampling
 from rasterio.transform import from_gcps
 
 from geosr._version import __version__
-from geosr.errors import DestinationError, InputError, ModelError, ParameterError
-from geosr.errors import GeoreferencingWarning
-from geosr.raster import MIN_CHUNK
+from geosr.errors import (
+    DestinationError,
+    GeoreferencingWarning,
+    InputError,
+    ModelError,
+    ParameterError,
+)
 from geosr.pipeline.magnify import magnify_raster, train_from_rasters
+from geosr.raster import MIN_CHUNK
 
-from helpers import BicubicContractModel, camera, list_dir, sha256_of
+from helpers import camera, list_dir, sha256_of
 
 
 def _read(path):

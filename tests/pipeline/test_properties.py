@@ -19,8 +19,8 @@ from affine import Affine
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from geosr.raster.windows import MIN_CHUNK
 from geosr.pipeline.magnify import magnify_raster
+from geosr.raster.windows import MIN_CHUNK
 
 from helpers import BicubicContractModel
 

@@ -1,18 +1,36 @@
-"""A small progress bar on stderr: blocks done / total, rate and time left.
+"""What the command line shows of a library run: progress bars and log lines.
 
-The scheduling layer drives it from the main process as each block's result
-arrives, so it works the same with local threads or processes and with a
-dask.distributed cluster. On a terminal it redraws one line; when stderr is
-redirected to a file it writes a line at every tenth of the work (and at
-least every 30 seconds), so logs stay short.
+The library reports progress through a callback ``progress(done, total)``
+and its steps through :mod:`logging`; this module renders both on stderr.
+:class:`ProgressBars` is such a callback: it draws a :class:`Progress` bar
+(blocks done / total, rate and time left) from the main process as each
+block's result arrives, so it works the same with local threads or
+processes and with a dask.distributed cluster. On a terminal a bar redraws
+one line; when stderr is redirected to a file it writes a line at every
+tenth of the work (and at least every 30 seconds), so logs stay short.
+:func:`library_output` prints the library's log records as
+``<step>: <message>`` lines (``train: fitting the model ...``).
 """
 
 from __future__ import annotations
 
+import contextlib
+import logging
 import sys
 import time
+from collections.abc import Iterator
 
-__all__ = ["Progress", "format_duration"]
+import click
+
+__all__ = ["Progress", "ProgressBars", "format_duration", "library_output", "progress_bars"]
+
+#: The step named in front of a library log line, by logger (longest prefix wins).
+STEP_NAMES = {
+    "geosr.pipeline.magnify": "magnify",
+    "geosr.pipeline.train": "train",
+    "geosr.assess": "geosr assess",
+    "geosr": "geosr",
+}
 
 
 def format_duration(seconds):
@@ -148,3 +166,79 @@ class Progress:
     def __exit__(self, *exc):
         self.close()
         return False
+
+
+class ProgressBars:
+    """A progress callback ``(done, total)`` drawing a :class:`Progress` bar on stderr.
+
+    ``(0, total)`` starts a bar (a new one for each run the library reports);
+    the bar finishes when ``done`` reaches ``total`` or at :meth:`close`.
+
+    Parameters
+    ----------
+    label : str
+        Printed in front of the bar (``"magnify"``, ``"train: collect"``).
+    """
+
+    def __init__(self, label: str) -> None:
+        self.label = label
+        self.bar: Progress | None = None
+
+    def __call__(self, done: int, total: int) -> None:
+        if self.bar is None or done == 0:
+            self.close()
+            self.bar = Progress(total, self.label).__enter__()
+        else:
+            self.bar.update(done - self.bar.done)
+        if done >= total:
+            self.close()
+
+    def close(self) -> None:
+        """Finish the current bar, if any (also after an error)."""
+        if self.bar is not None:
+            self.bar.close()
+            self.bar = None
+
+
+@contextlib.contextmanager
+def progress_bars(label: str, quiet: bool) -> Iterator[ProgressBars | None]:
+    """A :class:`ProgressBars` callback for the duration, or None with ``--quiet``."""
+    if quiet:
+        yield None
+        return
+    bars = ProgressBars(label)
+    try:
+        yield bars
+    finally:
+        bars.close()
+
+
+class _StderrLines(logging.Handler):
+    """Prints each record as ``<step>: <message>`` on the current stderr."""
+
+    def emit(self, record: logging.LogRecord) -> None:
+        name = record.name
+        while name not in STEP_NAMES and "." in name:
+            name = name.rsplit(".", 1)[0]
+        try:
+            click.echo(f"{STEP_NAMES.get(name, 'geosr')}: {record.getMessage()}", err=True)
+        except Exception:  # noqa: BLE001 - logging must never fail the run
+            self.handleError(record)
+
+
+@contextlib.contextmanager
+def library_output(quiet: bool) -> Iterator[None]:
+    """Print the library's INFO log lines on stderr for the duration (none with ``--quiet``)."""
+    if quiet:
+        yield
+        return
+    logger = logging.getLogger("geosr")
+    handler = _StderrLines(logging.INFO)
+    level = logger.level
+    logger.addHandler(handler)
+    logger.setLevel(logging.INFO)
+    try:
+        yield
+    finally:
+        logger.removeHandler(handler)
+        logger.setLevel(level)
