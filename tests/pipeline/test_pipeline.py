@@ -117,12 +117,13 @@ def test_contract_model_matches_gdal_cubic_grid(make_raster, run_dir, bicubic_mo
 
 
 # ------------------------------------------------------- the shared test data
-def test_landsat_scene_contract(shared_file, run_dir, tiny_model):
-    src = shared_file("RGB.byte.tif")
+def test_real_scene_crop_contract(shared_file, run_dir, tiny_model):
+    # A 240 x 240 crop of RGB.byte.tif with part of its nodata border (tests/data/SOURCES.md).
+    src = shared_file("rgb-byte-crop.tif")
     before = sha256_of(src)
     dst = run_dir / "rgb_x2.tif"
-    res = magnify_raster(src, dst, tiny_model, chunk_size=256)
-    assert res.width == 2 * 791 and res.height == 2 * 718
+    res = magnify_raster(src, dst, tiny_model, chunk_size=100)
+    assert res.width == 2 * 240 and res.height == 2 * 240
     with rasterio.open(src) as s, rasterio.open(dst) as d:
         assert (d.width, d.height, d.count) == (2 * s.width, 2 * s.height, s.count)
         assert d.crs == s.crs
@@ -139,7 +140,7 @@ def test_landsat_scene_contract(shared_file, run_dir, tiny_model):
         assert (data[out_mask > 0] != 0).all()  # a valid pixel never takes the nodata value
         assert (data[out_mask == 0] == 0).all()
         tags = d.tags()
-    assert tags["GEOSR_SOURCE"] == "RGB.byte.tif"
+    assert tags["GEOSR_SOURCE"] == "rgb-byte-crop.tif"
     assert sha256_of(src) == before
 
 
@@ -485,9 +486,9 @@ def test_stale_temporary_removed(make_raster, run_dir, tiny_model):
 def test_stac_sidecar(shared_file, run_dir, bicubic_model):
     import json
 
-    src = shared_file("RGB.byte.tif")
+    src = shared_file("rgb-byte-crop.tif")
     dst = run_dir / "rgb.tif"
-    res = magnify_raster(src, dst, bicubic_model, stac=True, chunk_size=512)
+    res = magnify_raster(src, dst, bicubic_model, stac=True, chunk_size=128)
     assert res.stac == run_dir / "rgb.json"
     item = json.loads(res.stac.read_text())
     assert item["type"] == "Feature" and item["stac_version"] == "1.1.0"
@@ -495,7 +496,7 @@ def test_stac_sidecar(shared_file, run_dir, bicubic_model):
     assert props["processing:software"] == {"geosr": __version__}
     assert "synthesized" in props["processing:lineage"]
     assert props["proj:code"] == "EPSG:32618"
-    assert props["proj:shape"] == [1436, 1582]
+    assert props["proj:shape"] == [480, 480]
     # The file's transform gives 300.04 m pixels; at x2 they are about 150 m.
     assert props["gsd"] == pytest.approx(150.02, abs=0.01)
     link = [lk for lk in item["links"] if lk["rel"] == "derived_from"]

@@ -22,12 +22,12 @@ from helpers import camera, sha256_of
 
 
 def test_inspect_source_describes_the_landsat_scene(shared_file):
-    src = shared_file("RGB.byte.tif")
+    src = shared_file("rgb-byte-crop.tif")
     info = inspect_source(src)
-    # Figures from ../shared/data/SOURCES.md.
-    assert (info.width, info.height, info.count) == (791, 718, 3)
+    # Figures from tests/data/SOURCES.md (a 240 x 240 window of RGB.byte.tif).
+    assert (info.width, info.height, info.count) == (240, 240, 3)
     assert info.dtypes == ("uint8",) * 3 and info.nodatavals == (0.0,) * 3
-    assert info.crs.to_epsg() == 32618 and info.name == "RGB.byte.tif"
+    assert info.crs.to_epsg() == 32618 and info.name == "rgb-byte-crop.tif"
     assert os.path.isabs(info.path)
 
 
@@ -155,7 +155,7 @@ def test_stale_temporaries_of_dead_runs_only(tmp_path):
 
 
 def test_inspect_never_modifies_the_source(shared_file):
-    src = shared_file("RGB.byte.tif")
+    src = shared_file("rgb-byte-crop.tif")
     before = sha256_of(src), sorted(os.listdir(src.parent))
     inspect_source(src)
     with rasterio.open(src) as ds:
