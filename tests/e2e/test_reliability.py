@@ -262,7 +262,7 @@ CASES = [
     Case("corrupt-blocks", "SRC's header opens but its blocks fail to decode (corrupt.tif)",
          shared("corrupt.tif"), ("--chunk", "512"), code=1, message="read error",
          advice="Fetch the file again or repair it with GDAL.",
-         covered_by="test_workflow.py::test_corrupt_blocks_give_one_clear_error_and_no_output"),
+         covered_by="tests/pipeline/test_pipeline.py::test_corrupt_blocks_give_one_clear_error_and_no_output"),
     Case("smaller-than-patch", "SRC is 3 x 4 pixels, smaller than one patch", make_tiny, code=0,
          message="geosr: wrote", kind="success", advice="Nothing: it is magnified."),
     Case("one-pixel", "SRC is 1 x 1 pixel", make_one_pixel, code=0, message="geosr: wrote",
@@ -292,17 +292,17 @@ CASES = [
     Case("nan-inf-in-valid-data", "float SRC holds NaN and infinity among valid pixels",
          make_nan_inf, code=0, message="geosr: wrote", kind="success",
          advice="Nothing: those pixels come out as nodata.",
-         covered_by="test_workflow.py::test_infinity_inside_valid_float_data"),
+         covered_by="tests/pipeline/test_pipeline.py::test_infinity_inside_valid_float_data"),
     Case("no-crs", "SRC has no CRS (float_nan.tif)", shared("float_nan.tif"), code=0,
          message="geosr: warning: The source raster 'float_nan.tif' has no CRS", kind="success",
          advice="Nothing, or assign a CRS to SRC first."),
     Case("rotated-transform", "SRC has a rotated geotransform (rotated.tif)", shared("rotated.tif"),
          code=0, message="geosr: wrote", kind="success",
          advice="Nothing: the rotation is kept.",
-         covered_by="test_workflow.py::test_rotated_transform"),
+         covered_by="tests/pipeline/test_pipeline.py::test_rotated_transform"),
     Case("gcp-only", "SRC is georeferenced by ground control points only", make_gcp_only, code=0,
          message="geosr: wrote", kind="success", advice="Nothing: the GCP pixel coordinates are scaled.",
-         covered_by="test_workflow.py::test_gcp_only_georeferencing_scales_pixel_coordinates"),
+         covered_by="tests/pipeline/test_pipeline.py::test_gcp_only_georeferencing_scales_pixel_coordinates"),
     # ------------------------------------------------------------ parameters
     Case("scale-0", "--scale 0", scene, ("--scale", "0"), code=2, message="integer from 2 to 8",
          advice="Use a scale from 2 to 8."),
@@ -784,3 +784,13 @@ def test_readme_table_matches():
         assert int(code) == c.code, c.id
         assert c.message in shown or c.id == "sigkill", (c.id, shown)
         assert what == c.what and advice == c.advice, c.id
+
+
+def test_covering_tests_exist():
+    # A case that points to a deeper test must point to one that exists.
+    root = README.parent
+    for c in CASES:
+        if not c.covered_by:
+            continue
+        path, _, name = c.covered_by.partition("::")
+        assert f"def {name}(" in (root / path).read_text(), c.id
