@@ -17,12 +17,11 @@ from __future__ import annotations
 
 import argparse
 import json
-import tempfile
 from pathlib import Path
 
 import geosr
 
-DATA = Path(__file__).resolve().parents[1] / "tests" / "data"
+from _common import DATA, output_folder, run
 
 
 def main(argv=None):
@@ -33,12 +32,11 @@ def main(argv=None):
                         help="folder to hold the report folder (default: a new temporary folder)")
     parser.add_argument("--scale", type=int, default=2)
     args = parser.parse_args(argv)
-    out = args.out or Path(tempfile.mkdtemp(prefix="geosr-assess-"))
-    out.mkdir(parents=True, exist_ok=True)
+    out = output_folder(args.out, "geosr-assess-")
     report_dir = out / "report"
 
     # Without a model, the model shipped for this scale is assessed.
-    geosr.assess_raster(args.reference, report_dir, args.scale, overwrite=True)
+    geosr.assess_raster(args.reference, report_dir, args.scale)
     print(f"report written to {report_dir}: {', '.join(sorted(p.name for p in report_dir.iterdir()))}")
 
     # metrics.json is keyed by method; each entry has an "overall" object and
@@ -56,7 +54,4 @@ def main(argv=None):
 
 
 if __name__ == "__main__":
-    try:
-        raise SystemExit(main())
-    except geosr.GeosrError as exc:  # bad input or a failed run: one line, no traceback
-        raise SystemExit(f"error: {exc}") from None
+    run(main)

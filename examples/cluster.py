@@ -17,20 +17,18 @@ Run from the repository root:
 from __future__ import annotations
 
 import argparse
-import tempfile
 from pathlib import Path
 
 import rasterio
 
 import geosr
 
-DATA = Path(__file__).resolve().parents[1] / "tests" / "data"
+from _common import DATA, output_folder, run
 
 
 def magnify_on(address, src, dst, scale):
     """Magnify ``src`` with the cluster at ``address`` doing the block work."""
-    result = geosr.magnify_raster(src, dst, scale=scale, scheduler=address, chunk_size=128,
-                                  overwrite=True)
+    result = geosr.magnify_raster(src, dst, scale=scale, scheduler=address, chunk_size=128)
     print(f"wrote {result.dst} ({result.width} x {result.height}) in {result.blocks} blocks "
           f"on {result.scheduler}, {result.seconds:.1f} s")
     with rasterio.open(dst) as ds:
@@ -47,8 +45,7 @@ def main(argv=None):
     parser.add_argument("--address", default=None,
                         help="address of a running scheduler (default: start a LocalCluster)")
     args = parser.parse_args(argv)
-    out = args.out or Path(tempfile.mkdtemp(prefix="geosr-cluster-"))
-    out.mkdir(parents=True, exist_ok=True)
+    out = output_folder(args.out, "geosr-cluster-")
     dst = out / f"{args.src.stem}-x{args.scale}.tif"
     if args.address:
         magnify_on(args.address, args.src, dst, args.scale)
@@ -67,7 +64,4 @@ def main(argv=None):
 
 
 if __name__ == "__main__":  # required: the worker processes import this file
-    try:
-        raise SystemExit(main())
-    except geosr.GeosrError as exc:  # bad input or a failed run: one line, no traceback
-        raise SystemExit(f"error: {exc}") from None
+    run(main)

@@ -15,14 +15,13 @@ Run from the repository root:
 from __future__ import annotations
 
 import argparse
-import tempfile
 from pathlib import Path
 
 import rasterio
 
 import geosr
 
-DATA = Path(__file__).resolve().parents[1] / "tests" / "data"
+from _common import DATA, output_folder, run
 
 
 def describe(path):
@@ -46,13 +45,12 @@ def main(argv=None):
                         help="output folder (default: a new temporary folder)")
     parser.add_argument("--scale", type=int, default=2, help="magnification, 2 to 4 with the shipped models")
     args = parser.parse_args(argv)
-    out = args.out or Path(tempfile.mkdtemp(prefix="geosr-magnify-"))
-    out.mkdir(parents=True, exist_ok=True)
+    out = output_folder(args.out, "geosr-magnify-")
     dst = out / f"{args.src.stem}-x{args.scale}.tif"
 
     # One call does the whole job: read in blocks with a halo, magnify, write
     # a tiled GeoTIFF with the georeferencing adjusted and provenance tags.
-    result = geosr.magnify_raster(args.src, dst, scale=args.scale, overwrite=True)
+    result = geosr.magnify_raster(args.src, dst, scale=args.scale)
     print(f"wrote {result.dst} ({result.width} x {result.height}, {result.count} bands, "
           f"method {result.method}, {result.blocks} block(s), {result.seconds:.1f} s)")
 
@@ -75,7 +73,4 @@ def main(argv=None):
 
 
 if __name__ == "__main__":
-    try:
-        raise SystemExit(main())
-    except geosr.GeosrError as exc:  # bad input or a failed run: one line, no traceback
-        raise SystemExit(f"error: {exc}") from None
+    run(main)

@@ -20,19 +20,20 @@ Run from the repository root:
 from __future__ import annotations
 
 import argparse
-import tempfile
 from pathlib import Path
 
 import rasterio
 
 import geosr
 
-DATA = Path(__file__).resolve().parents[1] / "tests" / "data"
+from _common import DATA, output_folder, run
 
 
 def declare_fill_as_nodata(src, folder, fill=0):
     """Copy ``src`` into ``folder`` with ``fill`` declared as its nodata value."""
     dst = Path(folder) / Path(src).name
+    if dst.exists():  # two inputs of one name: never write over the first copy
+        raise SystemExit(f"error: two inputs are named {dst.name!r}; rename one")
     with rasterio.open(src) as ds:
         profile = ds.profile
         profile.update(nodata=fill)
@@ -52,8 +53,7 @@ def main(argv=None):
                         help="output folder (default: a new temporary folder)")
     parser.add_argument("--scale", type=int, default=2)
     args = parser.parse_args(argv)
-    out = args.out or Path(tempfile.mkdtemp(prefix="geosr-train-"))
-    out.mkdir(parents=True, exist_ok=True)
+    out = output_folder(args.out, "geosr-train-")
     inputs = out / "inputs"
     inputs.mkdir(exist_ok=True)
     references = [declare_fill_as_nodata(p, inputs) for p in args.references]
@@ -73,7 +73,7 @@ def main(argv=None):
 
     # Magnify with the saved model: the file records its scale and method.
     dst = out / f"{args.target.stem}-x{args.scale}.tif"
-    result = geosr.magnify_raster(target, dst, model=model_path, overwrite=True)
+    result = geosr.magnify_raster(target, dst, model=model_path)
     print(f"wrote {result.dst}: {result.width} x {result.height}, model {result.model_sha256[:12]}...")
 
     # The declared fill stays nodata: the output mask is the source mask
@@ -87,7 +87,4 @@ def main(argv=None):
 
 
 if __name__ == "__main__":
-    try:
-        raise SystemExit(main())
-    except geosr.GeosrError as exc:  # bad input or a failed run: one line, no traceback
-        raise SystemExit(f"error: {exc}") from None
+    run(main)

@@ -138,6 +138,9 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if not args.shared.is_dir():
         parser.error(f"SHARED must be a folder of the original rasters, got {args.shared}")
+    if args.out.exists() and args.out.resolve() == args.shared.resolve():
+        # The verbatim copies would be written onto their own originals.
+        parser.error(f"--out must be another folder than SHARED, got {args.out} for both")
     args.out.mkdir(parents=True, exist_ok=True)
     for name, (source, window) in CROPS.items():
         crop(args.shared / source, args.out / name, window)

@@ -39,7 +39,7 @@ def check_magnified(path, src, scale):
 
 
 def test_every_example_is_listed_and_tested():
-    scripts = sorted(p.name for p in EXAMPLES.glob("*.py"))
+    scripts = sorted(p.name for p in EXAMPLES.glob("*.py") if not p.name.startswith("_"))
     readme = (EXAMPLES / "README.md").read_text()
     tested = Path(__file__).read_text()
     for name in scripts:
@@ -97,3 +97,16 @@ def test_cluster(tmp_path):
     address = lines[0].split()[-1]
     assert f"on dask.distributed cluster at {address}" in out and lines[-1] == "cluster shut down"
     check_magnified(tmp_path / "rgb-byte-crop-x2.tif", TEST_DATA / "rgb-byte-crop.tif", 2)
+
+
+def test_examples_refuse_a_folder_that_holds_files(tmp_path):
+    # An example never replaces a file: --out must be new or empty.
+    keep = tmp_path / "rgb-byte-crop-x2.tif"
+    keep.write_bytes(b"the user's own file")
+    proc = subprocess.run([sys.executable, str(EXAMPLES / "magnify_scene.py"), "--out", str(tmp_path)],
+                          check=False, capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 1
+    assert proc.stderr.strip().splitlines() == [
+        f"error: --out must be a new or empty folder, got {str(tmp_path)!r}"
+    ]
+    assert keep.read_bytes() == b"the user's own file"
