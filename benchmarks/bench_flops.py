@@ -24,12 +24,12 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _common import best_of, result  # noqa: E402
-
 from geosr.core.anchored import apply_projections, nearest_anchors  # noqa: E402
 from geosr.core.features import FEATURE_RADIUS, WINDOW_CENTRE, lowres_windows  # noqa: E402
 from geosr.core.sparse import omp_codes  # noqa: E402
 from geosr.modelfile import default_model  # noqa: E402
+
+from _common import best_of, result  # noqa: E402
 
 
 def in_two_threads(fn, *arrays):

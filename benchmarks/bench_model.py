@@ -19,10 +19,10 @@ import numpy as np
 from skimage import color, data
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _common import best_of  # noqa: E402
-
 from geosr.core.model import CoupledDictionary  # noqa: E402
 from geosr.core.resample import crop_to_multiple, degrade, upscale_bicubic  # noqa: E402
+
+from _common import best_of  # noqa: E402
 
 
 def result(**kw):

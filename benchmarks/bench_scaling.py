@@ -20,10 +20,10 @@ import time
 import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _common import make_raster, result  # noqa: E402
-
 from geosr.modelfile import default_model  # noqa: E402
 from geosr.pipeline.magnify import magnify_raster  # noqa: E402
+
+from _common import make_raster, result  # noqa: E402
 
 
 def timed(src, dst, model, **kw):

@@ -23,11 +23,11 @@ import rasterio
 from rasterio.enums import Resampling
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _common import make_raster, result, training_photos  # noqa: E402
-
 from geosr.core.model import CoupledDictionary
 from geosr.modelfile import default_model  # noqa: E402
 from geosr.pipeline.magnify import magnify_raster  # noqa: E402
+
+from _common import make_raster, result, training_photos  # noqa: E402
 
 SCALE = 3
 
