@@ -22,6 +22,7 @@ from . import _version
 from ._validation import check_scale
 from .cautions import CAUTION
 from .core.features import FEATURE_RADIUS
+from .core.guided import GuidedRegression
 from .core.model import CoupledDictionary
 from .core.params import check_params, header_params, model_sha256
 from .errors import ModelError, ParameterError
@@ -31,6 +32,10 @@ if TYPE_CHECKING:
 
 __all__ = [
     "FORMAT_VERSION",
+    "GUIDED_FORMAT",
+    "guided_model_sha256",
+    "load_guided_model",
+    "save_guided_model",
     "default_model",
     "default_model_path",
     "load_models",
@@ -41,6 +46,9 @@ __all__ = [
 
 #: Version of the model file layout; bumped when the layout changes.
 FORMAT_VERSION = 1
+
+#: The ``format`` of a guided model file (see :func:`save_guided_model`).
+GUIDED_FORMAT = "geosr-guided-model"
 
 
 _ARRAY_NAMES = {
@@ -96,6 +104,12 @@ def save_models(
         "scale": scales.pop(),
         "models": entries,
     }
+    _write_npz(path, arrays, header)
+
+
+def _write_npz(path, arrays, header):
+    """Write arrays and a JSON header to a temporary file, then rename it into place."""
+    arrays = dict(arrays)
     arrays["header"] = np.array(json.dumps(header, sort_keys=True))
     path = os.fspath(path)
     folder = os.path.dirname(os.path.abspath(path))
@@ -137,6 +151,28 @@ def load_models(path: str | os.PathLike) -> list[CoupledDictionary]:
     """
     path = os.fspath(path)
     where = f"The model file {path!r}"
+    header, arrays = _read_npz(path, where)
+    if header.get("format") == GUIDED_FORMAT:
+        raise ModelError(f"{where} holds a guided model; give it with a guide (--guide), got none")
+    if header.get("format") != "geosr-model":
+        raise ModelError(f"{where} must be a geosr model, got another kind of file")
+    _check_version(header, where)
+    entries = header.get("models")
+    if not isinstance(entries, list) or not entries:
+        raise ModelError(f"{where} must list at least one model, got none")
+    models = []
+    for n, entry in enumerate(entries):
+        try:
+            models.append(_model_from_entry(entry, n, arrays))
+        except ModelError as exc:
+            raise ModelError(f"{where}: {exc}") from None
+        except (ParameterError, KeyError, TypeError, ValueError) as exc:
+            raise ModelError(f"{where} must hold valid model parameters, got {exc}") from None
+    return models
+
+
+def _read_npz(path, where):
+    """The JSON header and the arrays of a model file; never unpickles."""
     if not os.path.exists(path):
         raise ModelError(f"{where} must exist, got no such file")
     if os.path.isdir(path):
@@ -150,8 +186,13 @@ def load_models(path: str | os.PathLike) -> list[CoupledDictionary]:
         header = json.loads(str(arrays.pop("header")))
     except Exception:
         raise ModelError(f"{where} must carry a geosr JSON header, got none or a damaged one") from None
-    if not isinstance(header, dict) or header.get("format") != "geosr-model":
+    if not isinstance(header, dict):
         raise ModelError(f"{where} must be a geosr model, got another kind of file")
+    return header, arrays
+
+
+def _check_version(header, where):
+    """Refuse a newer format; warn when another geosr version wrote the file."""
     version = header.get("format_version")
     if not isinstance(version, int) or version > FORMAT_VERSION or version < 1:
         raise ModelError(
@@ -163,20 +204,8 @@ def load_models(path: str | os.PathLike) -> list[CoupledDictionary]:
             f"{where} was written by geosr {header.get('geosr_version')}, "
             f"this is geosr {_version.__version__}",
             UserWarning,
-            stacklevel=2,
+            stacklevel=3,
         )
-    entries = header.get("models")
-    if not isinstance(entries, list) or not entries:
-        raise ModelError(f"{where} must list at least one model, got none")
-    models = []
-    for n, entry in enumerate(entries):
-        try:
-            models.append(_model_from_entry(entry, n, arrays))
-        except ModelError as exc:
-            raise ModelError(f"{where}: {exc}") from None
-        except (ParameterError, KeyError, TypeError, ValueError) as exc:
-            raise ModelError(f"{where} must hold valid model parameters, got {exc}") from None
-    return models
 
 
 def _model_from_entry(entry, n, arrays):
@@ -340,3 +369,83 @@ def model_card(
         "models": entries,
         "caution": CAUTION,
     }
+
+
+def guided_model_sha256(model: GuidedRegression) -> str:
+    """Checksum of a fitted guided model's arrays and parameters."""
+    return model_sha256(model.to_arrays(), _guided_params(model))
+
+
+def _guided_params(model):
+    return {k: (str(v) if hasattr(v, "value") else v) for k, v in model.get_params().items()}
+
+
+def save_guided_model(
+    path: str | os.PathLike,
+    model: GuidedRegression,
+    band_names: Sequence[str] | None = None,
+    training: dict[str, Any] | None = None,
+) -> None:
+    """Write a fitted guided model to an ``.npz`` file (arrays and a JSON header).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+    model : GuidedRegression
+        Fitted (by :func:`geosr.pipeline.train.train_guided` or ``fit``).
+    band_names : sequence of str, optional
+        One name per target band, kept in the header.
+    training : dict, optional
+        Provenance (source and guide files with their sha256 and bands).
+    """
+    if not isinstance(model, GuidedRegression) or not hasattr(model, "coef_"):
+        raise ParameterError("The 'model' parameter must be a fitted GuidedRegression")
+    if band_names is not None and len(band_names) != model.n_targets_:
+        raise ParameterError(
+            f"The 'band_names' parameter must name each of the {model.n_targets_} bands, "
+            f"got {len(band_names)} names"
+        )
+    header = {
+        "format": GUIDED_FORMAT,
+        "format_version": FORMAT_VERSION,
+        "geosr_version": _version.__version__,
+        "scale": int(model.scale),
+        "params": _guided_params(model),
+        "sha256": guided_model_sha256(model),
+        "band_names": None if band_names is None else [str(n) for n in band_names],
+        "training": dict(training or {}),
+    }
+    _write_npz(path, model.to_arrays(), header)
+
+
+def load_guided_model(path: str | os.PathLike) -> GuidedRegression:
+    """Read a guided model file written by :func:`save_guided_model`.
+
+    Never unpickles; checks the format, the version and the checksum.
+
+    Raises
+    ------
+    ModelError
+        A missing, damaged, edited or newer file, or a single-image model.
+    """
+    path = os.fspath(path)
+    where = f"The guided model file {path!r}"
+    header, arrays = _read_npz(path, where)
+    if header.get("format") == "geosr-model":
+        raise ModelError(f"{where} must be a guided model (from 'geosr train --guide'), got a single-image model")
+    if header.get("format") != GUIDED_FORMAT:
+        raise ModelError(f"{where} must be a geosr guided model, got another kind of file")
+    _check_version(header, where)
+    for name, a in arrays.items():
+        if a.dtype.kind != "f" or not np.isfinite(a).all():
+            raise ModelError(f"{where} array {name!r} must hold finite floats, got {a.dtype} or non-finite values")
+    try:
+        model = GuidedRegression.from_arrays(dict(header["params"]), arrays)
+    except (ModelError, ParameterError, KeyError, TypeError, ValueError) as exc:
+        raise ModelError(f"{where} must hold a valid guided model, got {exc}") from None
+    if guided_model_sha256(model) != header.get("sha256"):
+        raise ModelError(f"{where} arrays must match the checksum in the header, got different bytes")
+    model.sha256_ = header["sha256"]
+    model.band_names_ = header.get("band_names")
+    model.training_ = dict(header.get("training") or {})
+    return model

@@ -21,6 +21,8 @@ from . import options
 )
 @options.method_option
 @options.bands_option
+@options.guide_option
+@options.guide_bands_option
 @options.chunk_option
 @options.workers_option
 @options.scheduler_option
@@ -69,8 +71,8 @@ from . import options
 @options.config_option
 @options.quiet_option
 @click.pass_context
-def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degradation, scale, method, bands, chunk, workers,
-            scheduler, creation_options, cog, overwrite, consistency, ensemble, spectral_guard,
+def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degradation, scale, method, bands,
+            guides, guide_bands, chunk, workers, scheduler, creation_options, cog, overwrite, consistency, ensemble, spectral_guard,
             stac, max_output_bytes, no_space_check, quiet):
     """Magnify the raster SRC by an integer factor into DST.
 
@@ -86,7 +88,7 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
     """
     model, self_train = options.exclusive(ctx, "model", "self_train")
     workers, scheduler = options.workers_and_scheduler(ctx)
-    if model is None and not self_train and scale is None:
+    if model is None and not self_train and scale is None and not guides:
         raise click.UsageError(
             "Missing option '--scale': it is needed to pick the shipped model "
             "when neither --model nor --self-train is given",
@@ -98,10 +100,14 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
                      ("degradation", degradation))
         if v is not None
     }
-    if training and not self_train:
-        names = {"n_atoms": "--atoms", "max_samples": "--samples", "degradation": "--degradation"}
+    names = {"n_atoms": "--atoms", "max_samples": "--samples", "degradation": "--degradation"}
+    if guides:
+        _check_guided_usage(ctx, training, self_train)
+    elif training and not self_train:
         given = ", ".join(names[k] for k in training)
         raise click.UsageError(f"{given} only apply with --self-train, got them without it", ctx=ctx)
+    elif guide_bands:
+        raise click.UsageError("--guide-bands only applies with --guide, got it without", ctx=ctx)
     from ..pipeline.magnify import magnify_raster
     from .progress import library_output, progress_bars
 
@@ -131,8 +137,11 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
             max_output_bytes=max_output_bytes,
             check_free_space=not no_space_check,
             progress=bar,
+            guide=list(guides) or None,
+            guide_bands=list(guide_bands) if guide_bands else None,
         )
     options.report(ctx, f"geosr: wrote {_summary(result)}")
+    _report_guided(ctx, result)
     for residual in result.consistency or ():
         if residual.rms is not None:
             options.report(
@@ -149,3 +158,29 @@ def _summary(result):
     size = f"{result.width} x {result.height}, {result.count} band"
     size += "s" if result.count != 1 else ""
     return f"{result.dst} ({size}, x{result.scale}, {result.method}, {result.seconds:.1f} s)"
+
+
+def _check_guided_usage(ctx, training, self_train):
+    """Options that do not apply to a guided run."""
+    if "n_atoms" in training:
+        raise click.UsageError("--atoms does not apply with --guide (a guided model has no atoms)", ctx=ctx)
+    if self_train:
+        raise click.UsageError(
+            "--self-train does not apply with --guide: a guided run learns on SRC unless "
+            "--model gives a guided model",
+            ctx=ctx,
+        )
+
+
+def _report_guided(ctx, result):
+    """The guide's correlation per band and the fallback share of a guided run."""
+    if not result.guide:
+        return
+    corr = ", ".join(f"{r:.2f}" for r in result.guide_correlation)
+    options.report(ctx, f"geosr: guide correlation per band: {corr}")
+    if result.fallback_fraction:
+        options.report(
+            ctx,
+            f"geosr: {100 * result.fallback_fraction:.3g} % of the output pixels had no valid "
+            "guide pixel and were magnified without it",
+        )

@@ -34,6 +34,8 @@ __all__ = [
     "method_option",
     "degradation_option",
     "bands_option",
+    "guide_option",
+    "guide_bands_option",
     "chunk_option",
     "workers_option",
     "scheduler_option",
@@ -318,7 +320,7 @@ def model_source_options(source, model_help):
             type=IntAtLeast(10),
             default=None,
             metavar="N",
-            help=f"With --self-train: training patches drawn from {source}.",
+            help=f"With --self-train (or --guide): training samples drawn from {source}.",
         ),
     ]
 
@@ -361,6 +363,24 @@ bands_option = click.option(
     default=None,
     metavar="LIST",
     help="Band numbers to use, starting at 1, e.g. '1,2,4' or '1-3'. Default: all bands.",
+)
+
+guide_option = click.option(
+    "--guide",
+    "guides",
+    multiple=True,
+    metavar="FINE",
+    help="A finer co-registered raster whose measured detail guides the magnification "
+    "(a 10 m band beside 20 m bands, a panchromatic band); repeatable, the files are "
+    "stacked. The scale is the ratio of the pixel sizes.",
+)
+
+guide_bands_option = click.option(
+    "--guide-bands",
+    type=BandsType(),
+    default=None,
+    metavar="LIST",
+    help="Bands of the stacked --guide files to use, starting at 1, e.g. '1-4'. Default: all.",
 )
 
 chunk_option = click.option(

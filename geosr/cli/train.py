@@ -19,8 +19,14 @@ from . import options
     metavar="MODEL",
     help="The model file to write (.npz).",
 )
-@options.scale_option(required=True)
+@options.scale_option(
+    required=False,
+    help="Integer magnification factor, 2 to 8. Required without --guide; with it, the "
+    "guide's pixel-size ratio (and --scale must agree).",
+)
 @options.bands_option
+@options.guide_option
+@options.guide_bands_option
 @click.option(
     "--shared",
     is_flag=True,
@@ -91,7 +97,7 @@ from . import options
 @options.config_option
 @options.quiet_option
 @click.pass_context
-def train(ctx, references, output, scale, bands, shared, method, degradation, sigma,
+def train(ctx, references, output, scale, bands, guides, guide_bands, shared, method, degradation, sigma,
           n_atoms, sparsity, n_iter, neighbours, high_fit, max_samples, random_state, chunk,
           workers, scheduler, overwrite, quiet):
     """Learn a model from the high-resolution rasters HR_RASTER and write it to MODEL.
@@ -100,10 +106,16 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
     degradation that describes how your coarse data was formed. By default
     each band gets its own model.
 
+    With --guide, HR_RASTER is one coarse scene and the model is a guided
+    one: learned on that scene at reduced resolution, for reuse with
+    'geosr magnify --guide --model' on neighbouring tiles of the same
+    acquisition.
+
     \b
     Examples:
       geosr train ref1.tif ref2.tif -o drone-x4.npz --scale 4
       geosr train ortho.tif -o x2.npz -s 2 --method anchored --shared
+      geosr train tile-20m.tif --guide tile-10m.tif -o guided-x2.npz
     """
     from ..errors import DestinationError
 
@@ -113,6 +125,14 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
             f"The output model {output!r} must not exist already, got an existing file; "
             "use --overwrite to replace it"
         )
+    if guides:
+        _train_guided(ctx, references, output, scale, bands, guides, guide_bands, degradation, sigma,
+                      max_samples, random_state, chunk, workers, scheduler, overwrite, quiet)
+        return
+    if guide_bands:
+        raise click.UsageError("--guide-bands only applies with --guide, got it without", ctx=ctx)
+    if scale is None:
+        raise click.UsageError("Missing option '--scale' / '-s' (needed without --guide)", ctx=ctx)
     if sigma is not None and degradation not in (None, "gaussian"):
         raise click.UsageError(
             f"--sigma only applies to --degradation gaussian, got --degradation {degradation}",
@@ -151,3 +171,40 @@ def train(ctx, references, output, scale, bands, shared, method, degradation, si
         n = len(models)
         kind = f"{n} model{'s' if n != 1 else ''}, one per band"
     options.report(ctx, f"geosr: wrote {output} ({kind}, x{scale})")
+
+
+def _train_guided(ctx, references, output, scale, bands, guides, guide_bands, degradation, sigma,
+                  max_samples, random_state, chunk, workers, scheduler, overwrite, quiet):
+    """``geosr train SCENE --guide FINE -o MODEL``: learn and save a guided model."""
+    if len(references) != 1:
+        raise click.UsageError(
+            f"With --guide, give exactly one coarse raster to learn from, got {len(references)}",
+            ctx=ctx,
+        )
+    for name in ("shared", "method", "n_atoms", "sparsity", "n_iter", "neighbours", "high_fit"):
+        if ctx.params.get(name):
+            flag = "--" + {"n_atoms": "atoms", "n_iter": "iterations"}.get(name, name).replace("_", "-")
+            raise click.UsageError(f"{flag} does not apply with --guide (it is a single-image option)", ctx=ctx)
+    if sigma is not None and degradation not in (None, "gaussian"):
+        raise click.UsageError(
+            f"--sigma only applies to --degradation gaussian, got --degradation {degradation}", ctx=ctx
+        )
+    from ..pipeline.guided import GUIDED_DEFAULTS, train_guided
+    from .progress import library_output, progress_bars
+
+    params = {k: v for k, v in (("degradation", degradation), ("sigma", sigma)) if v is not None}
+    if ctx.get_parameter_source("max_samples") is click.core.ParameterSource.DEFAULT:
+        max_samples = GUIDED_DEFAULTS["max_samples"]  # the single-image default is too few here
+    with library_output(quiet), progress_bars("train: guided", quiet) as bar:
+        model = train_guided(
+            references[0], list(guides), output=output, scale=scale, bands=list(bands) if bands else None,
+            guide_bands=list(guide_bands) if guide_bands else None, overwrite=overwrite,
+            chunk_size=chunk, workers=workers, scheduler=scheduler, progress=bar,
+            max_samples=max_samples, random_state=random_state, **params,
+        )
+    corr = ", ".join(f"{r:.2f}" for r in model.correlation_)
+    options.report(
+        ctx,
+        f"geosr: wrote {output} (guided model, {model.n_targets_} band"
+        f"{'s' if model.n_targets_ != 1 else ''}, x{model.scale}; guide correlation {corr})",
+    )

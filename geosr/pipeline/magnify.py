@@ -50,6 +50,19 @@ from ..raster.tags import carried_band_tags, carried_tags, provenance_tags, utc_
 from ..raster.transforms import scaled_transform
 from ..raster.windows import Block, check_chunk_size
 from .array import magnify_array
+from .guided import (
+    GUIDED_DEFAULTS,
+    GUIDED_METHOD,
+    BicubicFallback,
+    GuidedPlan,
+    check_guided_model,
+    check_guided_options,
+    guided_block_plan,
+    guided_tags,
+    learn_guided,
+    learning_block_plan,
+    warn_weak_correlation,
+)
 from .plan import (
     MagnifyPlan,
     check_models,
@@ -122,8 +135,12 @@ class _Options:
 
 
 def _check_options(model, *, scale, method, chunk_size, workers, scheduler, creation_options,
-                   max_output_bytes, training, retries, progress, **flags):
-    """Validate every option before the source is opened."""
+                   max_output_bytes, training, retries, progress, guided=False, **flags):
+    """Validate every option before the source is opened.
+
+    ``guided``: a guide is given; it learns on the scene unless a guided
+    model is, so ``training`` applies without ``self_train``.
+    """
     flags = {name: check_bool(value, name) for name, value in flags.items()}
     if scale is not None:
         scale = check_scale(scale)
@@ -132,7 +149,7 @@ def _check_options(model, *, scale, method, chunk_size, workers, scheduler, crea
     max_output_bytes = check_int(max_output_bytes, "max_output_bytes", 1)
     if flags["self_train"] and model is not None:
         raise ParameterError("The 'model' parameter must not be given with self_train=True, got a model")
-    if training is not None and not flags["self_train"]:
+    if training is not None and not flags["self_train"] and not guided:
         raise ParameterError("The 'training' parameter must only be given with self_train=True")
     if progress is not None and not callable(progress):
         raise ParameterError(f"The 'progress' parameter must be callable, got {type(progress).__name__}")
@@ -151,12 +168,16 @@ def _output_dtype(info: SourceInfo, bands: Sequence[int]) -> str:
     return str(np.result_type(*[info.dtypes[b - 1] for b in bands]))
 
 
-def _check_destinations(info, dst, count, scale, dtype, opts):
-    """The output path and the STAC path (or None), checked; the size refused early."""
-    dst_path = check_destination(dst, [info.path], opts.overwrite)
+def _check_destinations(info, dst, count, scale, dtype, opts, reads=None):
+    """The output path and the STAC path (or None), checked; the size refused early.
+
+    ``reads`` lists every file the run reads (the source by default).
+    """
+    reads = list(reads or [info.path])
+    dst_path = check_destination(dst, reads, opts.overwrite)
     stac_dst = None
     if opts.stac:
-        stac_dst = check_destination(stac_path(dst_path), [info.path, dst_path], opts.overwrite, name="stac")
+        stac_dst = check_destination(stac_path(dst_path), [*reads, dst_path], opts.overwrite, name="stac")
     out_bytes = scale * scale * info.width * info.height * count * np.dtype(dtype).itemsize
     if out_bytes > opts.max_output_bytes:
         raise InputError(
@@ -248,25 +269,38 @@ def _warn_georeferencing(info):
         )
 
 
-def _describe_output(plan: MagnifyPlan, opts: _Options) -> _Output:
-    """Profile, provenance tags and creation options of the output."""
+def _describe_output(plan: MagnifyPlan, opts: _Options, guided: Any = None) -> _Output:
+    """Profile, provenance tags and creation options of the output.
+
+    ``guided`` (a :class:`~geosr.pipeline.guided.GuidedPlan`) describes a
+    guided run: its method, model checksum and per-band guide correlation.
+    """
     from ..raster.writing import output_profile
 
     info, bp = plan.info, plan.block_plan
     gt_opts, cog_opts = _creation_options(plan, opts)
     _warn_georeferencing(info)
-    method_name = model_method(plan.models[0])
+    if guided is None:
+        method_name = model_method(plan.models[0])
+        shas = [model_sha(plan.models[r]) for r in bp.roles if r >= 0]
+    else:
+        method_name, shas = GUIDED_METHOD, [guided.model.sha256_]
     created = utc_now()
     tags = carried_tags(info.tags)
     tags.update(provenance_tags(
-        scale=plan.scale, method=method_name, model_sha256=[model_sha(plan.models[r]) for r in bp.roles if r >= 0],
+        scale=plan.scale, method=method_name, model_sha256=shas,
         source_name=info.name, created=created, consistency=opts.consistency, ensemble=opts.ensemble,
         spectral_guard=bp.spectral_guard,
     ))
     band_tags = []
+    n_magnified = 0
     for b, r in zip(bp.bands, bp.roles):
         bt = carried_band_tags(info.band_tags[b - 1])
-        if r >= 0:
+        if r >= 0 and guided is not None:
+            bt["GEOSR_MODEL_SHA256"] = guided.model.sha256_
+            bt["GEOSR_GUIDE_CORRELATION"] = f"{float(guided.model.correlation_[n_magnified]):.4f}"
+            n_magnified += 1
+        elif r >= 0:
             bt["GEOSR_MODEL_SHA256"] = model_sha(plan.models[r])
         else:
             bt["GEOSR_RESAMPLING"] = "nearest"
@@ -275,29 +309,54 @@ def _describe_output(plan: MagnifyPlan, opts: _Options) -> _Output:
     return _Output(profile, tags, band_tags, cog_opts, method_name, created)
 
 
-def _run_blocks(plan, output, tmp, opts):
+@dataclasses.dataclass(frozen=True)
+class BlockRun:
+    """How the blocks of a run are computed: the task, its jobs and shared arguments.
+
+    ``finish(counts)`` (optional) returns ``(tags, band_tags)`` to add to the
+    output once every block is written; ``counts`` holds ``valid``,
+    ``fallback`` and ``pixels`` (output pixels of the magnified bands).
+    """
+
+    task: Any
+    jobs: list[Any]
+    shared: list[Any]
+    finish: Any = None
+
+
+def _single_image_run(plan):
+    bp = plan.block_plan
+    return BlockRun(_magnify_task, [_MagnifyJob(bp, b) for b in plan.blocks], list(plan.models))
+
+
+def _run_blocks(plan, output, tmp, opts, run=None):
     """Magnify every block into ``tmp``; the consistency residuals (or None)."""
     from ..raster.writing import OutputRaster
 
     bp = plan.block_plan
-    jobs = [_MagnifyJob(bp, b) for b in plan.blocks]
-    counts = {"valid": 0, "residual": ResidualStats.empty(len(bp.bands))}
+    run = run or _single_image_run(plan)
+    n_magnified = sum(1 for r in bp.roles if r >= 0)
+    counts = {"valid": 0, "fallback": 0, "residual": ResidualStats.empty(len(bp.bands)),
+              "pixels": plan.scale ** 2 * plan.info.width * plan.info.height * n_magnified}
     with OutputRaster(tmp, output.profile, plan.scale, write_mask=bp.mode is MaskMode.MASK) as out:
         out.set_metadata(plan.info, bp.bands, output.tags, output.band_tags)
 
         def consume(result):
             out.write(result)
             counts["valid"] += result.n_valid
+            counts["fallback"] += result.n_fallback
             if result.residual is not None:
                 counts["residual"] = counts["residual"] + result.residual
 
-        run_tasks(_magnify_task, jobs, list(plan.models), consume, scheduler=opts.scheduler,
+        run_tasks(run.task, run.jobs, run.shared, consume, scheduler=opts.scheduler,
                   retries=opts.retries, progress=opts.progress, label="magnify")
         residuals = None
         if opts.consistency:
             residuals = consistency_residuals(counts["residual"], bp.roles)
             out.update_tags(*consistency_tags(residuals))
             _warn_residuals(residuals)
+        if run.finish is not None:
+            out.update_tags(*run.finish(counts))
     if counts["valid"] == 0:
         warnings.warn(
             f"The source raster {plan.info.name!r} has no valid pixel in the magnified bands; "
@@ -320,9 +379,10 @@ def _warn_residuals(residuals):
         )
 
 
-def _stac_item(plan, output, dst_path, cog):
+def _stac_item(plan, output, dst_path, cog, sources=()):
     info = plan.info
     return stac_item(
+        sources=sources,
         dst=dst_path, src=info.path, width=info.width * plan.scale, height=info.height * plan.scale,
         count=len(plan.bands.selected), crs=info.crs,
         transform=scaled_transform(info.transform, plan.scale), scale=plan.scale,
@@ -332,7 +392,7 @@ def _stac_item(plan, output, dst_path, cog):
     )
 
 
-def _write_outputs(plan, output, dests, opts):
+def _write_outputs(plan, output, dests, opts, run=None, sources=()):
     """Write the raster (and the COG copy and STAC sidecar) and rename them into place.
 
     A failure or an interrupt (KeyboardInterrupt) leaves neither the
@@ -347,16 +407,109 @@ def _write_outputs(plan, output, dests, opts):
         remove_stale_temps(stac_dst)
     with TempFiles() as temps:
         tmp = temps.scratch(dst_path, ".tif") if opts.cog else temps.new(dst_path, ".tif")
-        residuals = _run_blocks(plan, output, tmp, opts)
+        residuals = _run_blocks(plan, output, tmp, opts, run)
         if opts.cog:
             final = temps.new(dst_path, ".tif")
             log.info("writing the Cloud Optimized GeoTIFF")
             copy_to_cog(tmp, final, output.cog_options)
             temps.discard(tmp)
         if stac_dst is not None:
-            write_stac_item(temps.new(stac_dst, ".json"), _stac_item(plan, output, dst_path, opts.cog))
+            item = _stac_item(plan, output, dst_path, opts.cog, sources)
+            write_stac_item(temps.new(stac_dst, ".json"), item)
         temps.commit()
     return residuals
+
+
+def _given_guided_model(model):
+    """A guided model given as an object or a file, or None."""
+    if isinstance(model, (str, os.PathLike)):
+        from ..modelfile import load_guided_model
+
+        return load_guided_model(model)
+    return model
+
+
+def _learn_guided_model(info, bp, spec, opts):
+    """A guided model learned on the scene at reduced resolution."""
+    from ..modelfile import guided_model_sha256
+
+    params = dict(GUIDED_DEFAULTS)
+    params.update(opts.training or {})
+    progress = params.pop("progress", None)
+    magnified = tuple(b for b, r in zip(bp.bands, bp.roles) if r >= 0)
+    learn_bp = learning_block_plan(info, magnified, bp.scale, degradation=params.get("degradation", "bicubic"),
+                                   sigma=params.get("sigma"), retries=opts.retries)
+    try:
+        model = learn_guided(learn_bp, spec, params, chunk_size=max(opts.chunk_size, learn_bp.halo, 64),
+                             scheduler=opts.scheduler, retries=opts.retries, progress=progress)
+    except TypeError as exc:
+        raise ParameterError(f"The 'training' parameter must hold guided-model parameters, got: {exc}") from None
+    model.sha256_ = guided_model_sha256(model)
+    return model
+
+
+def _fallback_models(scale, method, bands):
+    """The single-image models used where the guide has no valid pixel."""
+    if scale in (2, 3, 4) or method is not None:
+        return resolve_models(None, scale=scale, method=method, bands=bands).models
+    return (BicubicFallback(scale),)
+
+
+def _plan_guided(src, dst, model, bands, guide, guide_bands, opts):
+    """Source, guide, fallback and guided models, blocks; destinations checked before learning."""
+    from ..raster.guide import open_guides
+
+    check_guided_options(opts)
+    info = inspect_source(src)
+    split = split_bands(info, bands)
+    guides = [guide] if isinstance(guide, (str, os.PathLike)) else list(guide)
+    spec = open_guides(guides, info, scale=opts.scale, guide_bands=guide_bands)
+    dtype = _output_dtype(info, split.selected)
+    fallback = _fallback_models(spec.scale, opts.method, split.magnified)
+    single = plan_blocks(info, split, list(fallback), spec.scale, dtype=dtype,
+                         chunk_size=opts.chunk_size, spectral_guard=False, retries=opts.retries)
+    given = _given_guided_model(model)
+    if given is not None:
+        given = check_guided_model(given, spec.scale, len(split.magnified), len(spec.bands))
+        where = given.get_params()
+    else:
+        where = {"degradation": "bicubic", "sigma": None, **(opts.training or {})}
+    bp = guided_block_plan(single.block_plan, where["degradation"], where["sigma"])
+    check_chunk_size(opts.chunk_size, bp.halo)
+    reads = [info.path, *spec.paths] + ([os.fspath(model)] if isinstance(model, (str, os.PathLike)) else [])
+    dests = _check_destinations(info, dst, len(split.selected), spec.scale, dtype, opts, reads)
+    guided_model = given if given is not None else _learn_guided_model(info, bp, spec, opts)
+    names = [info.descriptions[b - 1] or f"band {b}" for b in split.magnified]
+    warn_weak_correlation(guided_model, names)
+    plan = dataclasses.replace(single, block_plan=bp, halo=bp.halo)
+    guided = GuidedPlan(spec, guided_model, bp, single.block_plan, fallback, given is None)
+    return plan, guided, dests
+
+
+def _magnify_guided(src, dst, model, bands, guide, guide_bands, opts, started):
+    plan, guided, dests = _plan_guided(src, dst, model, bands, guide, guide_bands, opts)
+    output = _describe_output(plan, opts, guided)
+    spec = guided.guide
+    fraction: dict[str, float] = {}
+
+    def finish(counts):
+        tags = guided_tags(spec, guided.model, counts)
+        fraction["value"] = float(tags["GEOSR_GUIDE_FALLBACK_FRACTION"])
+        return tags, ()
+
+    run = BlockRun(guided.task, guided.jobs(plan.blocks), guided.shared, finish)
+    sources = [(p, f"Guide raster {os.path.basename(p)}") for p in spec.paths]
+    _write_outputs(plan, output, dests, opts, run, sources)
+    info = plan.info
+    return MagnifyResult(
+        dst=dests[0], stac=dests[1], width=info.width * plan.scale, height=info.height * plan.scale,
+        count=len(plan.bands.selected), scale=plan.scale, method=GUIDED_METHOD,
+        model_sha256=guided.model.sha256_, blocks=len(plan.blocks), halo=plan.halo,
+        chunk_size=plan.chunk, seconds=time.monotonic() - started,
+        scheduler=opts.scheduler.describe(), guide=tuple(spec.paths),
+        guide_correlation=tuple(float(r) for r in guided.model.correlation_),
+        fallback_fraction=fraction.get("value"),
+    )
 
 
 def magnify_raster(
@@ -383,6 +536,8 @@ def magnify_raster(
     max_output_bytes: int = DEFAULT_MAX_OUTPUT_BYTES,
     check_free_space: bool = True,
     progress: ProgressCallback | None = None,
+    guide: str | os.PathLike[str] | Sequence[str | os.PathLike[str]] | None = None,
+    guide_bands: Sequence[int] | str | None = None,
 ) -> MagnifyResult:
     """Magnify a georeferenced raster and write it as a GeoTIFF (or COG).
 
@@ -454,6 +609,19 @@ def magnify_raster(
         blocks: ``(0, total)`` before the first, then once per block. The
         self-training stage reports through ``training["progress"]``.
         Messages go to the ``geosr.pipeline.magnify`` logger.
+    guide : path or sequence of paths, optional
+        Finer co-registered rasters whose measured detail guides the
+        magnification (guided path). The scale is their pixel-size ratio to
+        ``src`` (an integer 2 to 8; ``scale`` must agree when given). Guides
+        on another grid are resampled onto the exact fine grid. A guided
+        model is learned on the scene at reduced resolution (``training``:
+        ``max_samples``, ``ridge``, ``degradation``, ``sigma``,
+        ``random_state``, ``progress``) unless ``model`` is one saved by
+        ``geosr train --guide``. Where the guide has no valid pixel the
+        single-image model shipped for the scale (of ``method``) fills in;
+        the tags count those pixels.
+    guide_bands : sequence of int or str, optional
+        1-based bands over the guide files stacked in order (all by default).
 
     Returns
     -------
@@ -478,8 +646,12 @@ def magnify_raster(
         scheduler=scheduler, creation_options=creation_options, max_output_bytes=max_output_bytes,
         training=training, retries=retries, overwrite=overwrite, cog=cog, consistency=consistency,
         ensemble=ensemble, spectral_guard=spectral_guard, stac=stac, self_train=self_train,
-        check_free_space=check_free_space, progress=progress,
+        check_free_space=check_free_space, progress=progress, guided=guide is not None,
     )
+    if guide is not None:
+        return _magnify_guided(src, dst, model, bands, guide, guide_bands, opts, started)
+    if guide_bands is not None:
+        raise ParameterError("The 'guide_bands' parameter must only be given with a guide")
     plan, dests = _plan(src, dst, model, bands, opts)
     output = _describe_output(plan, opts)
     residuals = _write_outputs(plan, output, dests, opts)

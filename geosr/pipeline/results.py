@@ -40,6 +40,14 @@ class MagnifyResult:
     scheduler : str
     consistency : tuple of ConsistencyResidual or None
         With the consistency option: the residual of each output band.
+    guide : tuple of str
+        Guided runs: the guide files (empty otherwise).
+    guide_correlation : tuple of float
+        Guided runs: per magnified band, the correlation the model found
+        between the band and its guide.
+    fallback_fraction : float or None
+        Guided runs: the share of output pixels magnified without the guide
+        (where it had no valid pixel).
     """
 
     dst: Path
@@ -56,6 +64,9 @@ class MagnifyResult:
     seconds: float
     scheduler: str
     consistency: tuple[ConsistencyResidual, ...] | None = None
+    guide: tuple[str, ...] = ()
+    guide_correlation: tuple[float, ...] = ()
+    fallback_fraction: float | None = None
 
 
 #: The stated tolerance of the consistency option: RMS of degrade(output) -

@@ -33,6 +33,9 @@ __all__ = [
     "read_block",
     "magnify_one_block",
     "magnify_block_values",
+    "block_result",
+    "block_values",
+    "work_dtype",
     "spectral_guard_applies",
     "READ_ERRORS",
 ]
@@ -104,6 +107,9 @@ class BlockResult:
         Valid output pixels over the magnified (not alpha) bands.
     residual : ResidualStats or None
         With the consistency option: the block's share of the residual.
+    n_fallback : int
+        Output pixels magnified by a fallback method (guided runs: where the
+        guide had no valid pixel).
     """
 
     block: Block
@@ -111,6 +117,7 @@ class BlockResult:
     mask: object
     n_valid: int
     residual: object = None
+    n_fallback: int = 0
 
 
 @dataclasses.dataclass
@@ -238,7 +245,7 @@ def read_block(path, bands, block, halo, height, width, *, masked=True, retries=
     return pad_symmetric(data, pads), pad_symmetric(valid, pads)
 
 
-def _block_values(plan, block, models, dtype):
+def block_values(plan, block, models, dtype):
     """Magnified values of every band of a block and where they are valid.
 
     Returns ``values`` of ``dtype`` (alpha bands hold their source values
@@ -298,9 +305,35 @@ def magnify_one_block(plan, block, models):
     -------
     BlockResult
     """
+    values, ok, stats = block_values(plan, block, models, work_dtype(plan))
+    return block_result(plan, block, values, ok, stats)
+
+
+def work_dtype(plan):
+    """The float type blocks are computed in: float32 for float32 outputs, else float64."""
+    return np.float32 if np.dtype(plan.dtype) == np.float32 else np.float64
+
+
+def block_result(plan, block, values, ok, stats=None, n_fallback=0):
+    """Convert magnified block values to the output pixel type, with its mask.
+
+    Parameters
+    ----------
+    plan : BlockPlan
+    block : Block
+    values : ndarray, shape (bands, scale*height, scale*width)
+        Float values of every output band (alpha bands hold their values).
+    ok : ndarray of bool, same shape
+        Where the values are valid.
+    stats : ResidualStats, optional
+    n_fallback : int
+        Output pixels magnified by a fallback method (reported in the result).
+
+    Returns
+    -------
+    BlockResult
+    """
     out_dtype = np.dtype(plan.dtype)
-    work = np.float32 if out_dtype == np.float32 else np.float64
-    values, ok, stats = _block_values(plan, block, models, work)
     nodata = plan.nodata if plan.mode is MaskMode.NODATA else None
     out = np.empty(values.shape, dtype=out_dtype)
     all_ok = np.ones(values.shape[1:], dtype=bool)
@@ -315,7 +348,7 @@ def magnify_one_block(plan, block, models):
     mask = None
     if plan.mode is MaskMode.MASK:
         mask = np.where(all_ok, 255, 0).astype(np.uint8)
-    return BlockResult(block, out, mask, n_valid, stats)
+    return BlockResult(block, out, mask, n_valid, stats, n_fallback)
 
 
 def magnify_block_values(plan, block, models):
@@ -332,6 +365,6 @@ def magnify_block_values(plan, block, models):
     -------
     ndarray, shape (bands, scale*height, scale*width)
     """
-    values, ok, _ = _block_values(plan, block, models, np.dtype(plan.dtype))
+    values, ok, _ = block_values(plan, block, models, np.dtype(plan.dtype))
     values[~ok] = np.nan
     return values

@@ -47,7 +47,7 @@ def _href(target, base_dir):
 
 
 def stac_item(*, dst, src, width, height, count, crs, transform, scale, method,
-              model_sha256, created, cog=False, band_names=None, source_name=None):
+              model_sha256, created, cog=False, band_names=None, source_name=None, sources=()):
     """Build the STAC Item for a magnified raster.
 
     Parameters
@@ -68,6 +68,11 @@ def stac_item(*, dst, src, width, height, count, crs, transform, scale, method,
         ISO 8601 UTC time of the run.
     cog : bool
     band_names : sequence of str, optional
+    source_name : str, optional
+        The name of ``src`` shown in the lineage (its file name by default).
+    sources : sequence of (path, title), optional
+        Further files the run read its pixels from (the guides of a guided
+        run), listed as ``derived_from`` links.
 
     Returns
     -------
@@ -135,6 +140,13 @@ def stac_item(*, dst, src, width, height, count, crs, transform, scale, method,
         ],
         "assets": {"data": asset},
     }
+    for path, title in sources:
+        item["links"].append({
+            "rel": "derived_from",
+            "href": _href(path, base),
+            "type": "image/tiff; application=geotiff",
+            "title": str(title),
+        })
     if bbox is not None:
         item["bbox"] = [float(v) for v in bbox]
     return item
