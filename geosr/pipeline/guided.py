@@ -184,7 +184,7 @@ def learn_guided(bp: BlockPlan, spec: GuideSpec, params: dict[str, Any], *, chun
 
 
 def _sample_rate(comb, max_samples, bp):
-    counts = np.asarray(comb.counts, dtype=np.float64)
+    counts = np.asarray(comb.count, dtype=np.float64)
     if counts.size == 0 or counts.max() <= 0:
         raise InputError(
             f"The source raster {os.path.basename(bp.path)!r} and its guide must share valid "
