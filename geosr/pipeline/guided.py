@@ -24,7 +24,6 @@ import numpy as np
 from ..core.guided import (
     CombinationStatistics,
     GuidedRegression,
-    TrainingStatistics,
     combination_statistics,
     guided_halo,
     training_statistics,
