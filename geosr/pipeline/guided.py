@@ -99,19 +99,38 @@ def _read_learn_block(job):
 
 def _combination_task(job, shared):
     coarse, valid, guide, guide_valid = _read_learn_block(job)
-    return combination_statistics(coarse, guide, valid, guide_valid, job.plan.scale,
-                                  margin=job.plan.halo, degradation=job.degradation,
-                                  sigma=job.sigma)
+    return job.block.index, combination_statistics(
+        coarse, guide, valid, guide_valid, job.plan.scale, margin=job.plan.halo,
+        degradation=job.degradation, sigma=job.sigma)
 
 
 def _training_task(job, shared):
     combination, sample_rate, random_state = shared
     coarse, valid, guide, guide_valid = _read_learn_block(job)
-    return training_statistics(
+    return job.block.index, training_statistics(
         coarse, guide, valid, guide_valid, combination, job.plan.scale, margin=job.plan.halo,
         origin=(job.block.row_off, job.block.col_off), sample_rate=sample_rate,
         random_state=random_state, degradation=job.degradation, sigma=job.sigma,
     )
+
+
+def _sum_in_order(task, jobs, shared, empty, *, scheduler, retries, progress, label):
+    """Run ``task`` on every job and sum the statistics in job order.
+
+    Summing in a fixed order (not in completion order) makes the model the
+    same bytes on threads, processes and a cluster.
+    """
+    results = {}
+
+    def keep(result):
+        results[result[0]] = result[1]
+
+    run_tasks(task, jobs, shared, keep, scheduler=scheduler, retries=retries, progress=progress,
+              label=label)
+    total = empty
+    for index in sorted(results):
+        total = results[index] if total is None else total + results[index]
+    return total
 
 
 def _learn_jobs(bp, spec, chunk, degradation, sigma):
@@ -160,26 +179,18 @@ def learn_guided(bp: BlockPlan, spec: GuideSpec, params: dict[str, Any], *, chun
         if progress is not None:
             progress(done["n"] + n, total)
 
-    sums: dict[str, Any] = {"comb": CombinationStatistics.empty(len(bp.bands), len(spec.bands))}
-
-    def add_comb(result):
-        sums["comb"] = sums["comb"] + result
-
+    run = {"scheduler": scheduler, "retries": retries, "progress": step}
     log.info("learning the guided model: pass 1 of 2 (%d windows)", len(jobs))
-    run_tasks(_combination_task, jobs, None, add_comb, scheduler=scheduler, retries=retries,
-              progress=step, label="guided-combine")
+    comb = _sum_in_order(_combination_task, jobs, None,
+                         CombinationStatistics.empty(len(bp.bands), len(spec.bands)),
+                         label="guided-combine", **run)
     done["n"] = len(jobs)
-    combination = model.combination_from_statistics(sums["comb"])
-    rate = _sample_rate(sums["comb"], p["max_samples"], bp)
-    sums["train"] = None
-
-    def add_train(result):
-        sums["train"] = result if sums["train"] is None else sums["train"] + result
-
+    combination = model.combination_from_statistics(comb)
+    rate = _sample_rate(comb, p["max_samples"], bp)
     log.info("learning the guided model: pass 2 of 2 (sample rate %.3g)", rate)
-    run_tasks(_training_task, jobs, [combination, rate, p["random_state"]], add_train,
-              scheduler=scheduler, retries=retries, progress=step, label="guided-learn")
-    return model.fit_statistics(sums["comb"], sums["train"])
+    train = _sum_in_order(_training_task, jobs, [combination, rate, p["random_state"]], None,
+                          label="guided-learn", **run)
+    return model.fit_statistics(comb, train)
 
 
 def _sample_rate(comb, max_samples, bp):

@@ -112,6 +112,18 @@ def test_worker_processes_equal_threads(scene, tmp_path):
     np.testing.assert_array_equal(_read(local.dst)[0], _read(procs.dst)[0])
 
 
+@pytest.mark.slow
+@pytest.mark.cluster
+def test_dask_distributed_cluster_equals_threads(scene, tmp_path):
+    coarse_path, guide_path, _, _ = scene
+    local = magnify_raster(coarse_path, tmp_path / "threads.tif", guide=guide_path, chunk_size=48)
+    cluster = magnify_raster(coarse_path, tmp_path / "cluster.tif", guide=guide_path, chunk_size=48,
+                             workers=2)
+    assert "LocalCluster" in cluster.scheduler
+    assert cluster.model_sha256 == local.model_sha256  # learning does not depend on the scheduler
+    np.testing.assert_array_equal(_read(local.dst)[0], _read(cluster.dst)[0])
+
+
 def test_tags_and_stac_name_the_guide(scene, tmp_path):
     coarse_path, guide_path, _, _ = scene
     out = magnify_raster(coarse_path, tmp_path / "out.tif", guide=guide_path, stac=True)
