@@ -564,34 +564,39 @@ def training_statistics(coarse, guide, coarse_valid, guide_valid, combination, s
         ur = _crop(_lowpass(xc[b], s, model, sigma, dm), trim)
         lr = _crop(_lowpass(pr, s, model, sigma, dm), trim)
         maps = _grid_maps(ur, _crop(pr, c - _REACH), lr)
-        a = _gather(maps, ii, jj)
         y = _crop(xc[b], c)[ii, jj].astype(np.float64) - maps[0][ii + _PR, jj + _PR]
-        _accumulate(stats.ata[b], stats.aty[b], a, y)
+        _accumulate_features(stats.ata[b], stats.aty[b], maps, ii, jj, y)
         stats.yty[b] = y @ y
         stats.count[b] = y.size
     return stats
 
 
-def _gather(maps, ii, jj):
-    """Feature rows at interior pixels ``(ii, jj)`` from maps with 2 of context."""
-    u2, l2, d2, ds2 = maps
-    p = GUIDE_PATCH
-    a = np.empty((ii.size, N_FEATURES))
-    uc = u2[ii + _PR, jj + _PR].astype(np.float64)
-    lc = l2[ii + _PR, jj + _PR].astype(np.float64)
-    col = 0
-    for k in range(p * p):
-        a[:, col] = d2[ii + k // p, jj + k % p]
-        col += 1
-    for src, centre in ((u2, uc), (l2, lc)):
-        for k in range(p * p):
-            if k != _CENTRE:
-                a[:, col] = src[ii + k // p, jj + k % p] - centre
-                col += 1
-    for k in range(p * p):
-        a[:, col] = ds2[ii + k // p, jj + k % p]
-        col += 1
-    return a
+def _accumulate_features(gram, cross, maps, ii, jj, y):
+    """Add the normal equations of the feature rows at interior pixels ``(ii, jj)``.
+
+    ``maps`` (U, L, D, D*slope) carry 2 pixels of context. Rows are gathered
+    in batches through flat indexes (one fancy-indexing pass per map), so a
+    block never holds all its feature rows at once.
+    """
+    u2, l2, d2, ds2 = (np.ascontiguousarray(m) for m in maps)
+    p, width = GUIDE_PATCH, u2.shape[1]
+    offsets = (np.arange(p)[:, None] * width + np.arange(p)[None, :]).ravel()
+    keep = np.arange(p * p) != _CENTRE
+    flat = [m.ravel() for m in (d2, u2, l2, ds2)]
+    n_rest = int(keep.sum())
+    for lo in range(0, len(y), _BATCH):
+        idx = (ii[lo : lo + _BATCH] * width + jj[lo : lo + _BATCH])[:, None] + offsets[None, :]
+        a1 = np.empty((len(idx), N_FEATURES + 1))
+        a1[:, : p * p] = flat[0][idx]
+        col = p * p
+        for m in flat[1:3]:
+            v = m[idx]
+            a1[:, col : col + n_rest] = (v - v[:, _CENTRE : _CENTRE + 1])[:, keep]
+            col += n_rest
+        a1[:, col : col + p * p] = flat[3][idx]
+        a1[:, -1] = 1.0
+        gram += a1.T @ a1
+        cross += a1.T @ y[lo : lo + _BATCH]
 
 
 def _ridge(ata, aty, ridge):
@@ -700,7 +705,7 @@ class GuidedRegression(BaseEstimator):
     _parameter_constraints: dict = {}
 
     def __init__(self, scale=2, degradation="bicubic", sigma=None, ridge=1e-3,
-                 max_samples=1_000_000, random_state=0):
+                 max_samples=200_000, random_state=0):
         self.scale = scale
         self.degradation = degradation
         self.sigma = sigma

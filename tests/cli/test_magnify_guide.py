@@ -57,7 +57,7 @@ def test_magnify_with_a_guide(pair, tmp_path):
     (["--consistency"], 2, "consistency"),
     (["--atoms", "64"], 2, "--atoms"),
     (["--self-train"], 2, "--self-train"),
-    (["--scale", "3"], 1, "pixel size"),
+    (["--scale", "3"], 2, "pixel-size ratio of 2"),
 ])
 def test_options_that_do_not_fit_a_guide(pair, tmp_path, extra, code, needle):
     coarse, fine = pair

@@ -21,7 +21,13 @@ from rasterio.crs import CRS
 from skimage.metrics import peak_signal_noise_ratio
 
 from geosr.core.resample import degrade, upscale_bicubic
-from geosr.errors import DestinationError, GeoreferencingWarning, InputError, ModelError, ParameterError
+from geosr.errors import (
+    DestinationError,
+    GeoreferencingWarning,
+    InputError,
+    ModelError,
+    ParameterError,
+)
 from geosr.modelfile import load_guided_model
 from geosr.pipeline.guided import train_guided
 from geosr.pipeline.magnify import magnify_raster
@@ -150,10 +156,12 @@ def test_nodata_in_source_and_guide_never_leaks(scene, tmp_path):
 def test_guide_on_a_shifted_grid_is_resampled_with_a_warning(scene, tmp_path):
     coarse_path, _, truth, _ = scene
     shifted = _write(tmp_path / "shifted.tif", truth.mean(axis=0), PIXEL,
-                     origin=(ORIGIN[0] + PIXEL / 2, ORIGIN[1] - PIXEL / 2))
+                     origin=(ORIGIN[0] + 1.5 * PIXEL, ORIGIN[1] - 1.5 * PIXEL))
     with pytest.warns(GeoreferencingWarning, match="resampl"):
         out = magnify_raster(coarse_path, tmp_path / "out.tif", guide=shifted)
-    assert 0 < out.fallback_fraction < 0.05  # the last row and column lie outside the guide
+    # The first row and column of 30 m pixels lie outside the shifted guide;
+    # the pixels whose features read them (about 15 on each side) fall back.
+    assert 0 < out.fallback_fraction < 0.15, out.fallback_fraction
 
 
 def test_ratio_and_overlap_errors(scene, tmp_path):
@@ -163,7 +171,7 @@ def test_ratio_and_overlap_errors(scene, tmp_path):
         magnify_raster(coarse_path, tmp_path / "a.tif", guide=odd)
     assert "\n" not in str(err.value)
     guide = _write(tmp_path / "g.tif", truth.mean(axis=0), PIXEL)
-    with pytest.raises(InputError):
+    with pytest.raises(ParameterError, match="pixel-size ratio of 2"):
         magnify_raster(coarse_path, tmp_path / "b.tif", guide=guide, scale=3)
     far = _write(tmp_path / "far.tif", truth.mean(axis=0), PIXEL, origin=(900000.0, 4200000.0))
     with pytest.raises(InputError, match="overlap"):
