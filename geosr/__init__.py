@@ -15,14 +15,19 @@ from .errors import GeosrError
 #: Public name -> the module that defines it.
 _ATTRIBUTES = {
     "CoupledDictionary": "geosr.core.model",
+    "GuidedRegression": "geosr.core.guided",
+    "sharpen_with_guide": "geosr.core.guided",
     "degrade": "geosr.core.resample",
     "upscale_bicubic": "geosr.core.resample",
     "default_model": "geosr.modelfile",
     "load_models": "geosr.modelfile",
     "save_models": "geosr.modelfile",
+    "load_guided_model": "geosr.modelfile",
+    "save_guided_model": "geosr.modelfile",
     "magnify_raster": "geosr.pipeline.magnify",
     "magnify_array": "geosr.pipeline.array",
     "train_from_rasters": "geosr.pipeline.train",
+    "train_guided": "geosr.pipeline.guided",
     "assess_raster": "geosr.assess.protocol",
 }
 #: Public submodule name -> the module it is.

@@ -437,8 +437,8 @@ def load_guided_model(path: str | os.PathLike) -> GuidedRegression:
         raise ModelError(f"{where} must be a geosr guided model, got another kind of file")
     _check_version(header, where)
     for name, a in arrays.items():
-        if a.dtype.kind != "f" or not np.isfinite(a).all():
-            raise ModelError(f"{where} array {name!r} must hold finite floats, got {a.dtype} or non-finite values")
+        if a.dtype.kind not in "fiu" or not np.isfinite(a).all():
+            raise ModelError(f"{where} array {name!r} must hold finite numbers, got {a.dtype} or non-finite values")
     try:
         model = GuidedRegression.from_arrays(dict(header["params"]), arrays)
     except (ModelError, ParameterError, KeyError, TypeError, ValueError) as exc:

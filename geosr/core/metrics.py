@@ -1,4 +1,4 @@
-"""Quality metrics for magnified rasters: PSNR, SSIM, ERGAS, SAM, Q, consistency.
+"""Quality metrics for magnified rasters: PSNR, SSIM, ERGAS, SAM, Q, QNR, consistency.
 
 Conventions shared by every function here:
 
@@ -31,6 +31,9 @@ Kruse et al., "The spectral image processing system (SIPS)", Remote Sensing
 of Environment 44, 1993 (SAM).
 Wang & Bovik, "A universal image quality index", IEEE Signal Processing
 Letters 9(3), 2002 (Q).
+Alparone, Aiazzi, Baronti, Garzelli, Nencini & Selva, "Multispectral and
+panchromatic data fusion assessment without reference", PE&RS 74(2), 2008
+(QNR).
 """
 
 from __future__ import annotations
@@ -42,7 +45,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import ndimage
 
-from .._validation import check_int, check_scale
+from .._validation import check_float, check_int, check_scale
 from ..errors import InputError, ParameterError
 from .resample import degradation_margin, degradation_taps, degrade
 
@@ -55,6 +58,9 @@ __all__ = [
     "q_index",
     "consistency_error",
     "ConsistencyError",
+    "qnr",
+    "d_lambda",
+    "d_s",
 ]
 
 #: SSIM constants and window of Wang et al. (IEEE TIP 2004), with the Gaussian
@@ -689,3 +695,275 @@ def consistency_error(
         )
     d = (degrade(out, s, degradation, sigma) - low)[use]
     return ConsistencyError(float(np.sqrt(np.mean(d * d))), float(np.abs(d).max()))
+
+
+# --------------------------------------------------------------------------
+# QNR (quality with no reference)
+# --------------------------------------------------------------------------
+#
+# Alparone, Aiazzi, Baronti, Garzelli, Nencini & Selva, "Multispectral and
+# panchromatic data fusion assessment without reference", Photogrammetric
+# Engineering & Remote Sensing 74(2), 2008.
+
+
+def _erode(mask2d, radius):
+    """True where every pixel within Chebyshev ``radius`` is valid (symmetric borders)."""
+    if radius <= 0 or mask2d.all():
+        return mask2d.copy()
+    filt = ndimage.minimum_filter(mask2d.astype(np.uint8), size=2 * radius + 1, mode="reflect")
+    return filt.astype(bool)
+
+
+def _degraded_mask(fine_mask, scale, degradation="bicubic", sigma=None):
+    """Coarse pixels whose degradation reads only valid fine pixels.
+
+    ``fine_mask`` is 2-D ``(s*h, s*w)``; returns ``(h, w)``. The fine image is
+    extended symmetrically as :func:`geosr.core.resample.degrade` does.
+    """
+    taps, start = degradation_taps(scale, degradation, sigma)
+    margin = max(degradation_margin(scale, degradation, sigma))
+    padded = np.pad(fine_mask, margin, mode="symmetric")
+    whole = _window_all_valid(padded, len(taps))
+    r0 = margin + start + scale * np.arange(fine_mask.shape[0] // scale)
+    c0 = margin + start + scale * np.arange(fine_mask.shape[1] // scale)
+    return whole[np.ix_(r0, c0)]
+
+
+def _magnify_mask(mask, scale):
+    """A (..., h, w) mask magnified by nearest neighbour to (..., s*h, s*w)."""
+    return np.repeat(np.repeat(mask, scale, axis=-2), scale, axis=-1)
+
+
+class _QnrInputs(NamedTuple):
+    fused: np.ndarray  # (N, s*h, s*w), 0 at invalid pixels
+    fused_mask: np.ndarray  # (N, s*h, s*w)
+    coarse: np.ndarray  # (N, h, w), 0 at invalid pixels
+    mask: np.ndarray  # (N, h, w)
+    block: int
+
+
+def _qnr_inputs(fused, coarse, scale, valid, block):
+    """Check the fused/coarse pair shared by D_lambda, D_s and QNR."""
+    s = check_scale(scale)
+    k = check_int(block, "block", 2)
+    f = _as_bands(fused, "fused")
+    m = _as_bands(coarse, "coarse")
+    expected = (m.shape[0], s * m.shape[1], s * m.shape[2])
+    if f.shape != expected:
+        raise InputError(
+            f"The 'fused' parameter must have shape {expected} (the coarse shape "
+            f"{m.shape} magnified by {s}), got {f.shape}"
+        )
+    if m.shape[1] < k or m.shape[2] < k:
+        raise InputError(
+            f"The 'coarse' parameter must be at least {k} x {k} pixels for QNR with "
+            f"block={k}, got {m.shape[1]} x {m.shape[2]}"
+        )
+    mask = _as_mask(valid, m.shape)
+    fmask = _magnify_mask(mask, s)
+    _check_finite(m, mask, "coarse")
+    _check_finite(f, fmask, "fused")
+    return _QnrInputs(np.where(fmask, f, 0.0), fmask, np.where(mask, m, 0.0), mask, k)
+
+
+def _q_mean(x, y, mask, k, what):
+    """Mean Q of the wholly valid k x k windows (stride 1) of two 2-D images."""
+    use = _window_all_valid(mask, k)
+    if not use.any():
+        raise InputError(
+            f"The 'valid' mask must leave a whole {k} x {k} window of valid pixels "
+            f"for {what}, got none"
+        )
+    x = np.where(mask, x, 0.0)
+    y = np.where(mask, y, 0.0)
+    return float(_q_map(x, y, mask, k)[use].mean(dtype=np.float64))
+
+
+def _d_lambda(inp, p):
+    n = inp.coarse.shape[0]
+    if n < 2:
+        return 0.0
+    terms = []
+    for l_band in range(n):
+        for r_band in range(l_band + 1, n):
+            fm = inp.fused_mask[l_band] & inp.fused_mask[r_band]
+            cm = inp.mask[l_band] & inp.mask[r_band]
+            q_f = _q_mean(inp.fused[l_band], inp.fused[r_band], fm, inp.block, "D_lambda")
+            q_m = _q_mean(inp.coarse[l_band], inp.coarse[r_band], cm, inp.block, "D_lambda")
+            terms.append(abs(q_f - q_m) ** p)
+    # Q is symmetric, so the mean over the N(N-1) ordered pairs is the mean
+    # over the N(N-1)/2 unordered ones.
+    return float(np.mean(terms) ** (1.0 / p))
+
+
+def _check_guide(guide, guide_valid, fine_shape, grid):
+    """The guide as float64 (k, rows, cols) on the fine grid and its 2-D mask.
+
+    A pixel is valid when valid in every guide band; ``grid`` names the fine
+    grid in the error message.
+    """
+    g = _as_bands(guide, "guide")
+    if g.shape[1:] != tuple(fine_shape):
+        raise InputError(
+            f"The 'guide' parameter must be on the grid {grid} ({fine_shape[0]} x "
+            f"{fine_shape[1]} pixels), got {g.shape[1]} x {g.shape[2]}"
+        )
+    gmask = _as_mask(guide_valid, g.shape, "guide_valid").all(axis=0)
+    if not gmask.any():
+        raise InputError("The 'guide_valid' mask must leave a pixel valid in every guide band, got none")
+    _check_finite(g, np.broadcast_to(gmask, g.shape), "guide")
+    return g, gmask
+
+
+def _guide_for_qnr(guide, guide_valid, inp, scale, degradation, sigma):
+    """The guide P (fine), its mask, P_L (coarse) and the mask of P_L."""
+    g, gmask = _check_guide(guide, guide_valid, inp.fused.shape[1:], "of 'fused'")
+    p = np.where(gmask, g.mean(axis=0), 0.0)
+    p_low = degrade(p, scale, degradation, sigma)
+    return p, gmask, p_low, _degraded_mask(gmask, scale, degradation, sigma)
+
+
+def _d_s(inp, guide, guide_valid, scale, q, degradation, sigma):
+    p, gmask, p_low, lmask = _guide_for_qnr(guide, guide_valid, inp, scale, degradation, sigma)
+    terms = []
+    for b in range(inp.coarse.shape[0]):
+        q_f = _q_mean(inp.fused[b], p, inp.fused_mask[b] & gmask, inp.block, "D_s")
+        q_m = _q_mean(inp.coarse[b], p_low, inp.mask[b] & lmask, inp.block, "D_s")
+        terms.append(abs(q_f - q_m) ** q)
+    return float(np.mean(terms) ** (1.0 / q))
+
+
+def d_lambda(fused: ArrayLike, coarse: ArrayLike, scale: int, *, valid: ArrayLike | None = None,
+             block: int = 32, p: float = 1.0) -> float:
+    """Spectral distortion D_lambda of QNR (Alparone et al., PE&RS 2008).
+
+    ``D_lambda = (1 / (N (N - 1)) sum_{l != r} |Q(F_l, F_r) - Q(M_l, M_r)|^p)^(1/p)``
+    with ``F`` the fused bands, ``M`` the coarse bands and ``Q`` the universal
+    image quality index of :func:`q_index`: its value in every ``block x
+    block`` window sliding by one pixel, averaged over the windows. The same
+    window size in pixels serves both grids (common practice in QNR
+    implementations, from memory). With one band there is no pair and
+    ``D_lambda`` is 0 by definition. 0 is best.
+
+    Parameters
+    ----------
+    fused : array_like, shape (N, s*h, s*w) or (s*h, s*w)
+        The fused (magnified) bands; any numeric dtype.
+    coarse : array_like, shape (N, h, w) or (h, w)
+        The coarse bands it was made from, at least ``block`` pixels a side.
+    scale : int
+        The integer scale ``s``, 2 to 8.
+    valid : ndarray of bool, shape (h, w) or (N, h, w), optional
+        Valid coarse pixels; the fused image is valid where this mask
+        magnified by nearest neighbour is. A pair uses only the windows wholly
+        valid in both bands.
+    block : int
+        Window side in pixels, default 32.
+    p : float
+        The exponent, > 0; default 1.
+
+    Returns
+    -------
+    float
+
+    Raises
+    ------
+    InputError
+        Shapes that do not match, non-finite valid values, a coarse image
+        smaller than the window, or a pair without a wholly valid window.
+    ParameterError
+        A bad ``scale``, ``block`` or ``p``.
+    """
+    p = check_float(p, "p", 0.0, low_open=True)
+    return _d_lambda(_qnr_inputs(fused, coarse, scale, valid, block), p)
+
+
+def d_s(fused: ArrayLike, coarse: ArrayLike, guide: ArrayLike, scale: int, *,
+        valid: ArrayLike | None = None, guide_valid: ArrayLike | None = None, block: int = 32,
+        q: float = 1.0, degradation: str = "bicubic", sigma: float | None = None) -> float:
+    """Spatial distortion D_s of QNR (Alparone et al., PE&RS 2008).
+
+    ``D_s = (1 / N sum_l |Q(F_l, P) - Q(M_l, P_L)|^q)^(1/q)`` with ``P`` the
+    guide on the fused grid and ``P_L = degrade(P, scale, degradation,
+    sigma)`` (:func:`geosr.core.resample.degrade`) on the coarse grid. ``Q``
+    as in :func:`d_lambda` (``block x block`` windows, stride 1, the same
+    window size on both grids). A guide of several bands is replaced by their
+    mean. 0 is best.
+
+    Parameters
+    ----------
+    fused, coarse, scale, valid, block
+        As :func:`d_lambda`.
+    guide : array_like, shape (s*h, s*w) or (k, s*h, s*w)
+        The guide on the fused grid.
+    guide_valid : ndarray of bool, shape (s*h, s*w) or (k, s*h, s*w), optional
+        Valid guide pixels (a pixel counts when valid in every guide band).
+        A coarse pixel of ``P_L`` is valid when its degradation reads only
+        valid guide pixels (symmetric extension included).
+    q : float
+        The exponent, > 0; default 1.
+    degradation : {"bicubic", "gaussian", "area"}
+        The model that makes ``P_L``.
+    sigma : float, optional
+        Gaussian width in fine pixels, only for ``"gaussian"``.
+
+    Returns
+    -------
+    float
+
+    Raises
+    ------
+    InputError
+        As :func:`d_lambda`; also a guide off the fused grid.
+    ParameterError
+        A bad ``scale``, ``block``, ``q``, ``degradation`` or ``sigma``.
+    """
+    q = check_float(q, "q", 0.0, low_open=True)
+    degradation_taps(check_scale(scale), degradation, sigma)  # validates both
+    inp = _qnr_inputs(fused, coarse, scale, valid, block)
+    return _d_s(inp, guide, guide_valid, int(scale), q, degradation, sigma)
+
+
+def qnr(fused: ArrayLike, coarse: ArrayLike, guide: ArrayLike, scale: int, *,
+        valid: ArrayLike | None = None, guide_valid: ArrayLike | None = None, block: int = 32,
+        alpha: float = 1.0, beta: float = 1.0, p: float = 1.0, q: float = 1.0,
+        degradation: str = "bicubic", sigma: float | None = None) -> dict[str, float]:
+    """Quality with no reference (Alparone et al., PE&RS 74(2), 2008).
+
+    ``QNR = (1 - D_lambda)^alpha (1 - D_s)^beta`` with the spectral
+    distortion of :func:`d_lambda` and the spatial distortion of :func:`d_s`.
+    1 is best (both distortions 0). A distortion above 1 (possible only for
+    anti-correlated images, since Q lies in -1..1) is clipped so that its
+    factor is 0 rather than negative or NaN.
+
+    Parameters
+    ----------
+    fused, coarse, guide, scale, valid, guide_valid, block, degradation, sigma
+        As :func:`d_s`.
+    alpha, beta : float
+        Exponents of the two factors, >= 0; default 1.
+    p, q : float
+        Exponents inside ``D_lambda`` and ``D_s``, > 0; default 1.
+
+    Returns
+    -------
+    dict
+        ``{"qnr": float, "d_lambda": float, "d_s": float}``.
+
+    Raises
+    ------
+    InputError
+        As :func:`d_s`.
+    ParameterError
+        A bad ``scale``, ``block``, exponent, ``degradation`` or ``sigma``.
+    """
+    alpha = check_float(alpha, "alpha", 0.0)
+    beta = check_float(beta, "beta", 0.0)
+    p = check_float(p, "p", 0.0, low_open=True)
+    q = check_float(q, "q", 0.0, low_open=True)
+    degradation_taps(check_scale(scale), degradation, sigma)  # validates both
+    inp = _qnr_inputs(fused, coarse, scale, valid, block)
+    dl = _d_lambda(inp, p)
+    ds = _d_s(inp, guide, guide_valid, int(scale), q, degradation, sigma)
+    value = max(0.0, 1.0 - dl) ** alpha * max(0.0, 1.0 - ds) ** beta
+    return {"qnr": float(value), "d_lambda": dl, "d_s": ds}

@@ -24,7 +24,6 @@ import numpy as np
 from ..core.guided import (
     CombinationStatistics,
     GuidedRegression,
-    TrainingStatistics,
     combination_statistics,
     guided_halo,
     training_statistics,
@@ -66,7 +65,7 @@ log = logging.getLogger(__name__)
 GUIDED_METHOD = "guided"
 
 #: Learning parameters of a guided run when the caller gives none.
-GUIDED_DEFAULTS: dict[str, Any] = {"max_samples": 1_000_000, "random_state": 0}
+GUIDED_DEFAULTS: dict[str, Any] = {"max_samples": 200_000, "random_state": 0}
 
 #: Below this correlation between a band and its guide, the run warns: the
 #: guide's detail may not describe the band (a rule of thumb, common practice
@@ -184,7 +183,7 @@ def learn_guided(bp: BlockPlan, spec: GuideSpec, params: dict[str, Any], *, chun
 
 
 def _sample_rate(comb, max_samples, bp):
-    counts = np.asarray(comb.counts, dtype=np.float64)
+    counts = np.asarray(comb.count, dtype=np.float64)
     if counts.size == 0 or counts.max() <= 0:
         raise InputError(
             f"The source raster {os.path.basename(bp.path)!r} and its guide must share valid "
