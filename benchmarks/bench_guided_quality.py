@@ -20,7 +20,9 @@ single-image magnification (the shipped model), the high-pass and GSA
 baselines and geosr's guided regression; the differences guided minus the
 better baseline and guided minus single-image, measured in the same run;
 ERGAS pooled over the bands; SAM (degrees, ``all`` only: the ``loo`` runs
-see one band at a time); QNR of the guided output.
+see one band at a time); QNR of the guided output; the share of compared pixels where
+the guided output falls back to bicubic interpolation (its guide footprint not wholly
+valid, e.g. along a scene's fill border).
 
     .venv/bin/python benchmarks/bench_guided_quality.py [--quick] [--scales 2 3]
 """
@@ -114,6 +116,7 @@ def _summary(runs, setup):
                   "sam": runs[0][m]["overall"]["sam"] if setup == "all" else None}
     out["qnr"] = float(np.mean([r["no_reference"]["methods"]["guided"]["qnr"] for r in runs]))
     out["corr"] = float(np.min([c for r in runs for c in r["guide"]["correlation"]]))
+    out["fallback"] = float(np.mean([r["guide"]["fallback_share"] for r in runs]))
     return out
 
 
@@ -129,7 +132,7 @@ def main():
     logging.disable(logging.INFO)
     head = ("| scene | setup | x | " + " | ".join(f"PSNR {m}" for m in METHODS)
             + " | guided - best baseline | guided - single | ERGAS guided / best baseline "
-            "| SAM guided / best baseline | QNR guided | min corr | s per run |")
+            "| SAM guided / best baseline | QNR guided | min corr | guided fallback | s per run |")
     print(head)
     print("|" + "---|" * (head.count("|") - 1))
     with tempfile.TemporaryDirectory() as tmp_name:
@@ -149,7 +152,7 @@ def main():
                           + f" | {s['guided']['psnr'] - s[best]['psnr']:+.2f} ({best})"
                           + f" | {s['guided']['psnr'] - s['geosr']['psnr']:+.2f}"
                           + f" | {_fmt(s['guided']['ergas'], 3)} / {_fmt(s[best]['ergas'], 3)}"
-                          + f" | {sam} | {_fmt(s['qnr'], 4)} | {_fmt(s['corr'], 3)} | {seconds:.0f} |",
+                          + f" | {sam} | {_fmt(s['qnr'], 4)} | {_fmt(s['corr'], 3)} | {100 * s['fallback']:.1f}% | {seconds:.0f} |",
                           flush=True)
 
 

@@ -25,7 +25,6 @@ Wald run's outputs are scored against the low-res input and the guide.
 from __future__ import annotations
 
 import dataclasses
-import hashlib
 import logging
 import os
 import warnings
@@ -40,7 +39,9 @@ from ..core.metrics import qnr
 from ..core.nodata import fill_invalid
 from ..core.resample import check_scale, degrade, upscale_bicubic
 from ..errors import GeoreferencingWarning, InputError, ParameterError
+from ..pipeline.guided import GUIDED_DEFAULTS, WEAK_CORRELATION, warn_weak_correlation
 from ..pipeline.plan import model_method, model_sha
+from ..raster.guide import sha256_file
 from ..raster.io import check_bands
 from .protocol import (
     _check_degradation,
@@ -54,7 +55,7 @@ from .protocol import (
 )
 from .report import METHODS, prepare_destination, write_guided_report
 
-__all__ = ["GUIDED_METHODS", "QNR_METHODS", "WEAK_CORRELATION", "assess_guided", "weak_correlation_lines"]
+__all__ = ["GUIDED_METHODS", "QNR_METHODS", "assess_guided"]
 
 log = logging.getLogger(__name__)
 
@@ -62,9 +63,6 @@ log = logging.getLogger(__name__)
 GUIDED_METHODS = ("guided", "highpass", "substitution", "geosr", "interpolation") + METHODS[1:]
 #: Methods scored with QNR ("interpolation" is geosr's bicubic, the reference row).
 QNR_METHODS = ("guided", "highpass", "substitution", "interpolation")
-#: Below this correlation of a band with its guide the report warns (common
-#: practice for detail injection, a rule of thumb).
-WEAK_CORRELATION = 0.6
 #: Relative tolerance of the pixel-size ratio (geotransforms stored as text lose digits).
 RATIO_TOLERANCE = 1e-3
 #: Window side of QNR's Q index (Alparone et al. 2008 use 32).
@@ -110,14 +108,6 @@ def _reference_grid(path):
             return _Grid(ds.transform, ds.crs, ds.height, ds.width)
     except rasterio.errors.RasterioError as exc:
         raise InputError(f"The 'reference' parameter must be a readable raster, got {path!r} ({exc})") from None
-
-
-def _sha256(path):
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def _ratio(ds, grid, path):
@@ -222,7 +212,7 @@ def _read_guides(paths, grid, guide_bands):
     data, valid = data[[b - 1 for b in sel]], valid[[b - 1 for b in sel]].all(axis=0)
     if not valid.any():
         raise InputError("The guide must have valid pixels over the reference, got none")
-    return _Guide(files, [_sha256(f) for f in files], list(sel), ratios[0], data, valid, resampled)
+    return _Guide(files, [sha256_file(f) for f in files], list(sel), ratios[0], data, valid, resampled)
 
 
 def _derive_scale(scale, ratio):
@@ -252,17 +242,19 @@ def _filled(data, valid):
 
 
 def _guided_outputs(coarse, coarse_valid, guide, guide_valid, s, deg_name, sigma):
-    """geosr's bicubic, the two baselines and the guided regression; and its correlation per band."""
+    """geosr's bicubic, the two baselines and the guided regression; and the fitted regression."""
     interp = upscale_bicubic(coarse, s)
     out = {"interpolation": interp}
     for name, fn in GUIDED_BASELINES.items():
         out[name] = np.asarray(fn(coarse, guide, s, degradation=deg_name, sigma=sigma, valid=coarse_valid,
                                   guide_valid=guide_valid), dtype=np.float64)
     cv = np.broadcast_to(coarse_valid, coarse.shape)
-    model = GuidedRegression(scale=s, degradation=deg_name, sigma=sigma).fit(coarse, guide, cv, guide_valid)
+    # the learning parameters of ``geosr magnify --guide``: the product a user gets is assessed
+    model = GuidedRegression(scale=s, degradation=deg_name, sigma=sigma, **GUIDED_DEFAULTS)
+    model.fit(coarse, guide, cv, guide_valid)
     values, ok = model.predict(coarse, guide, guide_valid)
     out["guided"] = np.where(ok, values, interp)  # bicubic where the guide's footprint is invalid
-    return out, [float(c) for c in model.correlation_]
+    return out, model, ok
 
 
 def _no_reference(ref, low, guide, g_ref, gv_ref, wald, s, deg_name, sigma):
@@ -320,7 +312,7 @@ def _as_reference_type(outputs, dtype):
 
 
 def _guide_entry(guide, correlation, band_names, s):
-    weak = [name for name, c in zip(band_names, correlation) if c < WEAK_CORRELATION]
+    weak = [name for name, c in zip(band_names, correlation) if not c >= WEAK_CORRELATION]  # NaN is weak
     return {"files": [os.path.basename(f) for f in guide.files], "sha256": guide.sha256,
             "bands": guide.bands, "scale_ratio": guide.ratio, "scale": s,
             "resampled": guide.resampled, "correlation": correlation,
@@ -371,7 +363,9 @@ def assess_guided(reference, report_dir, scale, *, guide, guide_bands=None, mode
                              deg_name, sigma_used, None, ref.bands)
     log.info("magnifying with geosr, the baselines and the guide")
     outputs, guarded = _magnify_back(ref, low, choice.models, s, False, False, spectral_guard)
-    wald, correlation = _guided_outputs(low.data, low.valid, g_ref, gv_ref, s, deg_name, sigma_used)
+    wald, fitted, ok = _guided_outputs(low.data, low.valid, g_ref, gv_ref, s, deg_name, sigma_used)
+    warn_weak_correlation(fitted, ref.band_names)
+    correlation = [float(c) for c in fitted.correlation_]
     outputs.update(_as_reference_type(wald, ref.dtype))
     log.info("computing metrics")
     valid = low.eval_valid
@@ -383,6 +377,8 @@ def assess_guided(reference, report_dir, scale, *, guide, guide_bands=None, mode
     result["methods"] = list(GUIDED_METHODS)
     result["no_reference"] = _no_reference(ref, low, g, g_ref, gv_ref, wald, s, deg_name, sigma_used)
     result["guide"] = _guide_entry(g, correlation, ref.band_names, s)
+    # compared pixels where the guided output is plain bicubic (the guide's footprint is not valid)
+    result["guide"]["fallback_share"] = float((~ok & valid).sum() / valid.sum())
     result["geosr_version"] = __version__
     shas = [model_sha(m) for m in choice.models]
     result["model_sha256"] = shas[0] if len(shas) == 1 else shas
@@ -396,11 +392,3 @@ def assess_guided(reference, report_dir, scale, *, guide, guide_bands=None, mode
                         g_ref.mean(axis=0))
     log.info("wrote %s", folder)
     return result
-
-
-def weak_correlation_lines(result: dict[str, Any]) -> list[str]:
-    """One warning line per band whose correlation with the guide is below :data:`WEAK_CORRELATION`."""
-    names = result["protocol"]["band_names"]
-    return [f"band {n}: correlation with the guide {c:.2f} < {WEAK_CORRELATION}: its guided detail "
-            "may be wrong" for n, c in zip(names, result["guide"]["correlation"])
-            if not c >= WEAK_CORRELATION]  # NaN counts as weak

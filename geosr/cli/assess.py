@@ -132,14 +132,10 @@ def _check_guide_usage(ctx, scale, guides, guide_bands, self_train, consistency,
 
 
 def _report_guided(ctx, metrics, report_dir):
-    """PSNR of the guided methods, single-image geosr and bicubic; weak correlations."""
-    from ..assess.guided import weak_correlation_lines
-
+    """PSNR of the guided methods, single-image geosr and bicubic (weak correlations are warnings)."""
     where = os.path.join(os.fspath(report_dir), "report.md")
     psnr = {m: metrics[m]["overall"]["psnr"] for m in ("guided", "highpass", "substitution", "geosr", "bicubic")}
     text = ", ".join(f"{v:.2f} dB {m}" for m, v in psnr.items())
-    for line in weak_correlation_lines(metrics):
-        options.report(ctx, f"geosr: warning: {line}")
     options.report(ctx, f"geosr: PSNR {text}; report: {where}")
 
 

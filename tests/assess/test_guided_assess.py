@@ -192,6 +192,21 @@ def test_assess_rows_equal_skimage_psnr_of_the_hand_baselines(tmp_path):
         expected = peak_signal_noise_ratio(ref.astype(np.float64), product, data_range=data_range)
         assert r[name]["overall"]["psnr"] == pytest.approx(expected, abs=1e-9), name
     assert r["protocol"]["valid_pixels"] == 96 * 96
+    assert r["guide"]["fallback_share"] == 0.0  # every guide pixel valid: no bicubic fallback
+
+
+@pytest.mark.slow
+def test_a_guide_over_part_of_the_reference(tmp_path):
+    """Pixels the guide does not cover are left out of the comparison."""
+    a, crs, t = _landsat()
+    b2 = _write(tmp_path / "b2.tif", a[:1], crs, t, nodata=0)
+    whole = _write(tmp_path / "whole.tif", _mean_guide(a[1:]), crs, t, nodata=0)
+    left = _write(tmp_path / "left.tif", _mean_guide(a[1:])[:, :160], crs, t, nodata=0)
+    n_whole = assess_raster(b2, tmp_path / "rep-whole", 2, guide=[whole])["protocol"]["valid_pixels"]
+    r = assess_raster(b2, tmp_path / "rep", 2, guide=[left])
+    n = r["protocol"]["valid_pixels"]
+    assert 0 < n < n_whole * 160 / 256  # the guide's right edge costs the degradation's reach too
+    assert "guide valid" in r["protocol"]["mask"] and 0.0 <= r["guide"]["fallback_share"] < 1.0
 
 
 # ---------------------------------------------------------------- a guide finer than REF
