@@ -35,6 +35,7 @@ import numpy as np
 from .._version import __version__
 from ..core.guided import GuidedRegression
 from ..core.injection import GUIDED_BASELINES
+from ..core import metrics as _metrics
 from ..core.metrics import qnr
 from ..core.nodata import fill_invalid
 from ..core.resample import check_scale, degrade, upscale_bicubic
@@ -311,6 +312,17 @@ def _as_reference_type(outputs, dtype):
     return outputs
 
 
+def _footprint(ref, outputs, valid, ok, data_range):
+    """The share of compared pixels where the guided output is plain bicubic (the guide's
+    footprint there is not wholly valid), and every method's PSNR over the other pixels."""
+    inside = valid & ok
+    psnr = None
+    if inside.any():
+        psnr = {m: float(_metrics.psnr(ref, np.where(inside, outputs[m], 0.0), data_range=data_range,
+                                       valid=inside)) for m in GUIDED_METHODS}
+    return {"fallback_share": float((valid & ~ok).sum() / valid.sum()), "footprint_psnr": psnr}
+
+
 def _guide_entry(guide, correlation, band_names, s):
     weak = [name for name, c in zip(band_names, correlation) if not c >= WEAK_CORRELATION]  # NaN is weak
     return {"files": [os.path.basename(f) for f in guide.files], "sha256": guide.sha256,
@@ -377,8 +389,7 @@ def assess_guided(reference, report_dir, scale, *, guide, guide_bands=None, mode
     result["methods"] = list(GUIDED_METHODS)
     result["no_reference"] = _no_reference(ref, low, g, g_ref, gv_ref, wald, s, deg_name, sigma_used)
     result["guide"] = _guide_entry(g, correlation, ref.band_names, s)
-    # compared pixels where the guided output is plain bicubic (the guide's footprint is not valid)
-    result["guide"]["fallback_share"] = float((~ok & valid).sum() / valid.sum())
+    result["guide"].update(_footprint(ref.data, outputs, valid, ok, data_range))
     result["geosr_version"] = __version__
     shas = [model_sha(m) for m in choice.models]
     result["model_sha256"] = shas[0] if len(shas) == 1 else shas

@@ -302,7 +302,10 @@ def _guide_lines(result, band_names):
         f"{g['scale_ratio']} times finer than the reference, on its grid {g['on_reference_grid']}"
         + (f"; resampled onto the grid (cubic): {', '.join(g['resampled'])}" if g["resampled"] else "")
         + f". The guided output is plain bicubic interpolation at {100 * g['fallback_share']:.1f}% of "
-        "the compared pixels, where the guide's footprint is not wholly valid.",
+        "the compared pixels, where the guide's footprint is not wholly valid"
+        + ("" if not g["footprint_psnr"] else "; PSNR over the other pixels: " + ", ".join(
+            f"{_LABELS.get(m, m)} {v:.2f} dB" for m, v in g["footprint_psnr"].items()))
+        + ".",
         "",
         "| band | correlation with the guide |", "|---|---|",
     ]

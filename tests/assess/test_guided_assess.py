@@ -193,6 +193,8 @@ def test_assess_rows_equal_skimage_psnr_of_the_hand_baselines(tmp_path):
         assert r[name]["overall"]["psnr"] == pytest.approx(expected, abs=1e-9), name
     assert r["protocol"]["valid_pixels"] == 96 * 96
     assert r["guide"]["fallback_share"] == 0.0  # every guide pixel valid: no bicubic fallback
+    # so the PSNR over the guided footprint is the PSNR over every compared pixel
+    assert r["guide"]["footprint_psnr"]["highpass"] == pytest.approx(r["highpass"]["overall"]["psnr"], abs=1e-9)
 
 
 @pytest.mark.slow
@@ -206,7 +208,10 @@ def test_a_guide_over_part_of_the_reference(tmp_path):
     r = assess_raster(b2, tmp_path / "rep", 2, guide=[left])
     n = r["protocol"]["valid_pixels"]
     assert 0 < n < n_whole * 160 / 256  # the guide's right edge costs the degradation's reach too
-    assert "guide valid" in r["protocol"]["mask"] and 0.0 <= r["guide"]["fallback_share"] < 1.0
+    assert "guide valid" in r["protocol"]["mask"] and 0.0 < r["guide"]["fallback_share"] < 1.0
+    # where guided falls back it equals geosr's bicubic: over the footprint guided gains more
+    foot = r["guide"]["footprint_psnr"]
+    assert foot["guided"] - foot["interpolation"] > _psnr(r, "guided") - _psnr(r, "interpolation")
 
 
 # ---------------------------------------------------------------- a guide finer than REF
