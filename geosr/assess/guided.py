@@ -33,9 +33,9 @@ from typing import Any
 import numpy as np
 
 from .._version import __version__
+from ..core import metrics as _metrics
 from ..core.guided import GuidedRegression
 from ..core.injection import GUIDED_BASELINES
-from ..core import metrics as _metrics
 from ..core.metrics import qnr
 from ..core.nodata import fill_invalid
 from ..core.resample import check_scale, degrade, upscale_bicubic
