@@ -299,7 +299,9 @@ def _guide_lines(result, band_names):
     g = result["guide"]
     lines = [
         f"Guide: {', '.join(f'`{f}`' for f in g['files'])}; bands {', '.join(map(str, g['bands']))}; "
-        f"{g['scale_ratio']} times finer than the reference, on its grid {g['on_reference_grid']}"
+        + ("on the reference's grid, used as read" if g["scale_ratio"] == 1 else
+           f"{g['scale_ratio']} times finer than the reference, brought onto its grid: "
+           f"{g['on_reference_grid']}")
         + (f"; resampled onto the grid (cubic): {', '.join(g['resampled'])}" if g["resampled"] else "")
         + f". The guided output is plain bicubic interpolation at {100 * g['fallback_share']:.1f}% of "
         "the compared pixels, where the guide's footprint is not wholly valid"
