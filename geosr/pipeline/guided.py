@@ -231,7 +231,7 @@ def _guided_task(job, shared):
     for i, role in enumerate(bp.roles):
         if role < 0:
             values[i] = nearest_magnify(data[i][inner], s)
-            ok[i] = True
+            ok[i] = nearest_magnify(valid[i][inner], s)
             continue
         values[i] = guided[magnified.index(i)]
         ok[i] = nearest_magnify(valid[i][inner], s) & np.isfinite(values[i])

@@ -471,6 +471,11 @@ def _plan_guided(src, dst, model, bands, guide, guide_bands, opts):
     check_guided_options(opts)
     info = inspect_source(src)
     split = split_bands(info, bands)
+    if not split.magnified:
+        raise ParameterError(
+            f"The bands of {info.name!r} must include one that is not alpha or categorical for "
+            "guided magnification, got none"
+        )
     guides = [guide] if isinstance(guide, (str, os.PathLike)) else list(guide)
     spec = open_guides(guides, info, scale=opts.scale, guide_bands=guide_bands)
     dtype = _output_dtype(info, split.selected)
