@@ -399,7 +399,7 @@ def _out_of_range(band, count):
     """The error for a band number beyond a raster's ``count`` bands."""
     has = f"the raster has {count} band{'s' if count != 1 else ''}"
     return ParameterError(
-        f"The 'bands' parameter must hold band numbers from 1 to {count} ({has}), got {band}"
+        f"The 'bands' parameter must hold band numbers from 1 to {count}, got {band}; {has}"
     )
 
 

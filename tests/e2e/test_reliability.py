@@ -572,7 +572,7 @@ CASES = [
     Case("bands-huge-range", "--bands 1-1000000", scene, ("--bands", "1-1000000"), code=2,
          message="from 1 to 65536", advice="Name bands that exist; see gdalinfo for the count."),
     Case("bands-beyond-count", "--bands names a band SRC does not have", scene, ("--bands", "1-3"),
-         code=2, message="(the raster has 1 band)", advice="Name bands from 1 to SRC's band count."),
+         code=2, message="got 2; the raster has 1 band", advice="Name bands from 1 to SRC's band count."),
     Case("model-named-pipe", "--model is a named pipe", scene, ("--model", "{extra}"), code=1,
          message="must be a regular file, got a named pipe", extra=model_fifo,
          advice="Give the model file itself."),

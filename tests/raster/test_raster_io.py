@@ -171,9 +171,9 @@ def test_check_bands_names_the_raster_count_before_expanding():
     from geosr.raster.io import check_bands, parse_bands
 
     start = time.perf_counter()
-    with pytest.raises(ParameterError, match=r"from 1 to 3 \(the raster has 3 bands\), got 1000000000"):
+    with pytest.raises(ParameterError, match=r"from 1 to 3, got 1000000000; the raster has 3 bands"):
         check_bands("1-1000000000", 3)
-    with pytest.raises(ParameterError, match=r"from 1 to 1 \(the raster has 1 band\), got 2"):
+    with pytest.raises(ParameterError, match=r"from 1 to 1, got 2; the raster has 1 band$"):
         check_bands((1, 2), 1)
     with pytest.raises(ParameterError, match="from 1 to 65536"):
         parse_bands("1-1000000")
