@@ -30,6 +30,7 @@ __all__ = [
     "SCALE_MIN",
     "SCALE_MAX",
     "MIN_CHUNK",
+    "MAX_BAND",
     "check_int",
     "check_float",
     "check_bool",
@@ -48,6 +49,12 @@ SCALE_MAX = 8
 #: Smallest block side in source pixels (common practice: below this the
 #: halo read costs more than the block itself).
 MIN_CHUNK = 16
+
+#: Highest band number a band list may name: 65536, GDAL's default cap on the
+#: band count of a dataset (its GDAL_MAX_BAND_COUNT setting; from memory).
+#: A range is checked against it before it is expanded, so "1-1000000" is
+#: refused at once instead of building a million-entry list.
+MAX_BAND = 65536
 
 
 def _is_bool(value: Any) -> bool:

@@ -10,8 +10,10 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import stat
 import tempfile
 import warnings
+import zipfile
 from collections.abc import Sequence
 from importlib import resources
 from typing import TYPE_CHECKING, Any
@@ -171,17 +173,59 @@ def load_models(path: str | os.PathLike) -> list[CoupledDictionary]:
     return models
 
 
+#: The first bytes of a zip archive (an ``.npz`` is one): a local file header,
+#: or the end-of-central-directory record of an empty archive (PKWARE APPNOTE 4.3).
+_ZIP_MAGIC = (b"PK\x03\x04", b"PK\x05\x06")
+
+
+def _check_regular_file(path, where):
+    """Refuse a missing path, a folder, a pipe or a device before opening it.
+
+    Opening a named pipe for reading blocks until a writer comes, and a
+    device may never end: only a regular file (after symlinks) is read.
+    """
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        raise ModelError(f"{where} must exist, got no such file") from None
+    except OSError as exc:
+        raise ModelError(f"{where} must be a readable file, got: {exc.strerror or exc}") from None
+    if stat.S_ISDIR(mode):
+        raise ModelError(f"{where} must be a file, got a directory")
+    if not stat.S_ISREG(mode):
+        kind = ("a named pipe" if stat.S_ISFIFO(mode) else "a socket" if stat.S_ISSOCK(mode)
+                else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode) else "not a regular file")
+        raise ModelError(f"{where} must be a regular file, got {kind}")
+
+
+def _unreadable(where, exc):
+    """geosr's own words for a file numpy cannot read (numpy's may advise allow_pickle)."""
+    text = str(exc)
+    if "pickle" in text.lower() or "object arrays" in text.lower():
+        reason = "it holds Python objects, which geosr never loads"
+    elif isinstance(exc, (zipfile.BadZipFile, EOFError)) or "zip" in text.lower():
+        reason = "a damaged or truncated .npz archive"
+    else:
+        reason = f"{type(exc).__name__}"
+    return ModelError(f"{where} must be a geosr .npz model, got an unreadable file ({reason})")
+
+
 def _read_npz(path, where):
     """The JSON header and the arrays of a model file; never unpickles."""
-    if not os.path.exists(path):
-        raise ModelError(f"{where} must exist, got no such file")
-    if os.path.isdir(path):
-        raise ModelError(f"{where} must be a file, got a directory")
+    _check_regular_file(path, where)
+    try:
+        with open(path, "rb") as fh:
+            magic = fh.read(4)
+    except OSError as exc:
+        raise ModelError(f"{where} must be a readable file, got: {exc.strerror or exc}") from None
+    if magic not in _ZIP_MAGIC:
+        what = "an empty file" if not magic else "a file that is not an .npz (zip) archive"
+        raise ModelError(f"{where} must be a geosr .npz model, got an unreadable file ({what})")
     try:
         with np.load(path, allow_pickle=False) as npz:
             arrays = {k: npz[k] for k in npz.files}
-    except Exception as exc:  # zip, npy or pickle errors all mean a damaged file
-        raise ModelError(f"{where} must be a geosr .npz model, got an unreadable file ({exc})") from None
+    except Exception as exc:  # zip, npy or object-array errors all mean an unusable file
+        raise _unreadable(where, exc) from None
     try:
         header = json.loads(str(arrays.pop("header")))
     except Exception:
@@ -311,6 +355,8 @@ def read_header(path: str | os.PathLike) -> dict[str, Any]:
     makes them).
     """
     try:
+        if not os.path.isfile(path):  # never open a pipe or a device
+            return {}
         with np.load(path, allow_pickle=False) as npz:
             header = json.loads(str(npz["header"]))
     except Exception:  # noqa: BLE001 - any unreadable file has no header to show

@@ -16,7 +16,7 @@ import re
 import click
 from click.core import ParameterSource
 
-from .._validation import MIN_CHUNK, SCALE_MAX, SCALE_MIN
+from .._validation import MAX_BAND, MIN_CHUNK, SCALE_MAX, SCALE_MIN
 from ..enums import Degradation, Method
 from .config import Key, load_config
 
@@ -143,7 +143,12 @@ class IntAtLeast(_GeosrType):
 
 
 class BandsType(_GeosrType):
-    """Band numbers starting at 1: ``"1,2,4"``, ``"1-3"`` (or a TOML array of integers)."""
+    """Band numbers starting at 1: ``"1,2,4"``, ``"1-3"`` (or a TOML array of integers).
+
+    Parsed in time linear in the number of bands; a band above
+    :data:`~geosr._validation.MAX_BAND` is refused before a range is
+    expanded (the raster's own band count is checked when it is opened).
+    """
 
     name = "list"
     config_kind = "bands"
@@ -155,32 +160,38 @@ class BandsType(_GeosrType):
         )
         if isinstance(value, tuple) and all(type(v) is int for v in value):
             return value  # already converted
-        if isinstance(value, (list, tuple)):
-            items = list(value)
-        else:
-            items = [s.strip() for s in str(value).split(",")]
-        bands = []
+        items = list(value) if isinstance(value, (list, tuple)) else [
+            s.strip() for s in str(value).split(",")]
+        bands: list[int] = []
+        seen: set[int] = set()
         for item in items:
-            if isinstance(item, bool):
+            lo, hi = self._bounds(item, message, param, ctx)
+            if hi > MAX_BAND:
+                self.fail(f"must be band numbers from 1 to {MAX_BAND} (no raster has more "
+                          f"bands), got {value!r}", param, ctx)
+            numbers = range(lo, hi + 1)
+            if lo < 1 or not seen.isdisjoint(numbers):
                 self.fail(message, param, ctx)
-            if isinstance(item, int):
-                numbers = [item]
-            else:
-                match = re.fullmatch(r"(\d+)(?:\s*-\s*(\d+))?", str(item))
-                if match is None:
-                    self.fail(message, param, ctx)
-                lo = int(match[1])
-                hi = int(match[2]) if match[2] else lo
-                if hi < lo:
-                    self.fail(message, param, ctx)
-                numbers = range(lo, hi + 1)
-            for band in numbers:
-                if band < 1 or band in bands:
-                    self.fail(message, param, ctx)
-                bands.append(band)
+            seen.update(numbers)
+            bands.extend(numbers)
         if not bands:
             self.fail(message, param, ctx)
         return tuple(bands)
+
+    def _bounds(self, item, message, param, ctx):
+        """First and last band of one item (a number or a range ``lo-hi``)."""
+        if isinstance(item, bool):
+            self.fail(message, param, ctx)
+        if isinstance(item, int):
+            return item, item
+        match = re.fullmatch(r"(\d+)(?:\s*-\s*(\d+))?", str(item))
+        if match is None:
+            self.fail(message, param, ctx)
+        lo = int(match[1])
+        hi = int(match[2]) if match[2] else lo
+        if hi < lo:
+            self.fail(message, param, ctx)
+        return lo, hi
 
 
 _CO_KEY = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")

@@ -28,7 +28,7 @@ from .resample import (
     upscale_valid,
 )
 
-__all__ = ["PairSample", "collect_pairs", "subset_tiles", "training_halo", "TILE_CELLS"]
+__all__ = ["PairSample", "collect_pairs", "subset_tiles", "training_halo", "TILE_CELLS", "MIN_CELLS"]
 
 #: Relative feature norm under which a training patch counts as flat.
 _FLAT_FRACTION = 0.02
@@ -38,6 +38,11 @@ _RESCALE_STEP = 0.98
 
 #: Side, in low-res cells, of the dense training tiles of ``high_fit="image"``.
 TILE_CELLS = 24
+
+#: Low-res cells a training window needs along each side: a patch centre and
+#: the ring of cells around it. A window of fewer than ``MIN_CELLS * scale``
+#: high-res pixels along a side gives no training pair.
+MIN_CELLS = 3
 
 
 @dataclasses.dataclass
@@ -162,7 +167,7 @@ def _pairs_from_block(params, block, halo, valid, budget, rng):
     cols = (block.shape[1] - 2 * halo) // s
     n_raw = (2 * r + 1) ** 2
     empty = (np.empty((0, n_raw), np.float32), np.empty((0, (3 * s) ** 2), np.float32), [])
-    if rows < 3 or cols < 3:
+    if rows < MIN_CELLS or cols < MIN_CELLS:
         return empty
     # Keep whole cells: the interior starts at halo and spans rows*s.
     ext = slice(halo - s * (r + margin_cells), halo + s * (rows + r + margin_cells))

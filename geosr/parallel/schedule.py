@@ -52,6 +52,8 @@ from typing import Any
 from threadpoolctl import threadpool_limits
 
 from ..errors import GeosrError, ParameterError, RunError
+from . import _quiet_worker
+from ._quiet_worker import ignore_sigint
 
 __all__ = ["ProgressCallback", "SchedulerSpec", "resolve_scheduler", "run_tasks", "default_workers"]
 
@@ -192,7 +194,13 @@ def _process_context(func):
 
 
 def _install_shared(token, payload):
-    """Pool initializer: unpickle the shared object once per worker process."""
+    """Pool initializer: unpickle the shared object once per worker process.
+
+    The worker also ignores SIGINT: Ctrl-C reaches every process of the
+    terminal's group, and only the main process should answer it (it stops
+    the pool and prints the one line); a worker would print a traceback.
+    """
+    ignore_sigint()
     _SHARED[token] = pickle.loads(payload)
 
 
@@ -319,7 +327,8 @@ def _client_for(spec):
             processes=True,
             host="127.0.0.1",
             dashboard_address=None,
-            silence_logs=logging.ERROR,
+            silence_logs=logging.CRITICAL,
+            preload=[_quiet_worker.__name__],  # workers leave Ctrl-C to this process
         )
         try:
             client = Client(cluster)

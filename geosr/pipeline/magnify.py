@@ -47,7 +47,7 @@ from ..raster.profiles import (
 )
 from ..raster.stac import stac_item, stac_path, write_stac_item
 from ..raster.tags import carried_band_tags, carried_tags, provenance_tags, utc_now
-from ..raster.transforms import scaled_transform
+from ..raster.transforms import scale_gcps, scaled_transform
 from ..raster.windows import Block, check_chunk_size
 from .array import magnify_array
 from .guided import (
@@ -245,11 +245,14 @@ def _creation_options(plan, opts):
     """GeoTIFF and COG creation options, checked by GDAL when the user gave some."""
     dtype, count, user = plan.block_plan.dtype, len(plan.bands.selected), opts.creation_options
     gt_opts = gtiff_options({} if opts.cog else user, dtype, choose_blocksize(plan.scale * plan.chunk))
+    info = plan.info
+    geo = {"crs": info.crs, "transform": scaled_transform(info.transform, plan.scale)} \
+        if info.crs is not None and not info.transform.is_identity else {}
     if user and not opts.cog:
-        validate_creation_options(gt_opts, driver="GTiff", dtype=dtype, count=count)
+        validate_creation_options(gt_opts, driver="GTiff", dtype=dtype, count=count, **geo)
     cog_opts = cog_options(user, dtype) if opts.cog else None
     if opts.cog and user:
-        validate_creation_options(cog_opts, driver="COG", dtype=dtype, count=count)
+        validate_creation_options(cog_opts, driver="COG", dtype=dtype, count=count, **geo)
     return gt_opts, cog_opts
 
 
@@ -390,15 +393,32 @@ def _warn_residuals(residuals):
 
 def _stac_item(plan, output, dst_path, cog, sources=()):
     info = plan.info
+    by_gcps = info.transform.is_identity and bool(info.gcps)
     return stac_item(
         sources=sources,
         dst=dst_path, src=info.path, width=info.width * plan.scale, height=info.height * plan.scale,
-        count=len(plan.bands.selected), crs=info.crs,
+        count=len(plan.bands.selected), crs=info.gcps_crs if by_gcps else info.crs,
+        gcps=scale_gcps(info.gcps, plan.scale) if by_gcps else None,
         transform=scaled_transform(info.transform, plan.scale), scale=plan.scale,
         method=output.method, model_sha256=output.tags["GEOSR_MODEL_SHA256"], created=output.created,
         cog=cog, source_name=info.name,
         band_names=[info.descriptions[b - 1] or f"band{b}" for b in plan.bands.selected],
     )
+
+
+def _write_sidecar(temps, stac_dst, make_item):
+    """Write the STAC sidecar; a failure is a warning, never the loss of the raster."""
+    tmp = temps.new(stac_dst, ".json")
+    try:
+        write_stac_item(tmp, make_item())
+    except (OSError, ValueError, TypeError, ArithmeticError) as exc:
+        temps.discard(tmp)
+        warnings.warn(
+            f"The STAC sidecar {os.fspath(stac_dst)!r} was not written ({type(exc).__name__}: {exc}); "
+            "the raster is written without it",
+            UserWarning,
+            stacklevel=4,
+        )
 
 
 def _write_outputs(plan, output, dests, opts, run=None, sources=()):
@@ -423,8 +443,7 @@ def _write_outputs(plan, output, dests, opts, run=None, sources=()):
             copy_to_cog(tmp, final, output.cog_options)
             temps.discard(tmp)
         if stac_dst is not None:
-            item = _stac_item(plan, output, dst_path, opts.cog, sources)
-            write_stac_item(temps.new(stac_dst, ".json"), item)
+            _write_sidecar(temps, stac_dst, lambda: _stac_item(plan, output, dst_path, opts.cog, sources))
         temps.commit()
     return residuals
 

@@ -77,11 +77,25 @@ def _select_bands(infos: Sequence[SourceInfo], bands: Any, shared: bool) -> list
     return selections
 
 
+def _too_small(infos, scale):
+    """Refuse references none of which holds one training patch (a window of MIN_CELLS cells)."""
+    from ..core.pairs import MIN_CELLS
+
+    side = MIN_CELLS * scale
+    if any(min(crop_to_scale(i.height, i.width, scale)) >= side for i in infos):
+        return side
+    sizes = ", ".join(f"{i.name}: {i.width} x {i.height}" for i in infos)
+    raise InputError(
+        f"The references must be at least {side} x {side} pixels to give one training patch "
+        f"at scale {scale}, got too small ones ({sizes})"
+    )
+
+
 def _train_jobs(infos, selections, scale, chunk, shared, halo, retries, budget, random_state):
     """One :class:`TrainJob` per window of every reference, each with its quota and seed."""
+    # Windows hold at least one patch: a smaller window would give no pair.
+    chunk = max(chunk, _too_small(infos, scale))
     areas = [h * w for h, w in (crop_to_scale(i.height, i.width, scale) for i in infos)]
-    if sum(areas) == 0:
-        raise InputError(f"The references must be at least {scale} x {scale} pixels, got smaller ones")
     total = sum(areas) * (len(selections[0]) if shared else 1)
     found = []
     for info, sel in zip(infos, selections):

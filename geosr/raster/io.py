@@ -25,6 +25,7 @@ import rasterio
 from rasterio.enums import ColorInterp, MaskFlags
 from rasterio.errors import NotGeoreferencedWarning, RasterioError
 
+from .._validation import MAX_BAND
 from ..errors import DestinationError, InputError, ParameterError
 
 __all__ = [
@@ -394,18 +395,31 @@ def _nbits(ds, band):
         return None
 
 
-def parse_bands(text):
+def _out_of_range(band, count):
+    """The error for a band number beyond a raster's ``count`` bands."""
+    has = f"the raster has {count} band{'s' if count != 1 else ''}"
+    return ParameterError(
+        f"The 'bands' parameter must hold band numbers from 1 to {count}, got {band}; {has}"
+    )
+
+
+def parse_bands(text, count=None):
     """Parse a band list such as ``"1,2,4"`` or ``"1-3"`` into 1-based indexes.
+
+    Linear in the number of bands; a range reaching above ``count`` (or
+    :data:`~geosr._validation.MAX_BAND`) is refused before it is expanded.
 
     Parameters
     ----------
     text : str
+    count : int, optional
+        Bands in the raster.
 
     Returns
     -------
     list of int
     """
-    out = []
+    out: list[int] = []
     for part in str(text).replace(" ", "").split(","):
         if not part:
             continue
@@ -419,12 +433,19 @@ def parse_bands(text):
         hi = int(m.group(2)) if m.group(2) else lo
         if hi < lo:
             raise ParameterError(f"The 'bands' parameter must have increasing ranges, got {part!r}")
+        if hi > (MAX_BAND if count is None else count):
+            if count is not None:
+                raise _out_of_range(hi, count)
+            raise ParameterError(f"The 'bands' parameter must hold band numbers from 1 to {MAX_BAND}, got {hi}")
         out.extend(range(lo, hi + 1))
     return out
 
 
 def check_bands(bands, count):
     """Validate a selection of 1-based band indexes against a band count.
+
+    Linear in the number of bands; a string's ranges are checked against
+    ``count`` before they are expanded.
 
     Parameters
     ----------
@@ -440,7 +461,7 @@ def check_bands(bands, count):
     if bands is None:
         return tuple(range(1, count + 1))
     if isinstance(bands, str):
-        bands = parse_bands(bands)
+        bands = parse_bands(bands, count)
     elif isinstance(bands, (int, np.integer)) and not isinstance(bands, bool):
         bands = [bands]
     try:
@@ -453,11 +474,10 @@ def check_bands(bands, count):
         if isinstance(b, bool) or not isinstance(b, (int, np.integer)):
             raise ParameterError(f"The 'bands' parameter must hold integers, got {b!r}")
         if not 1 <= b <= count:
-            raise ParameterError(
-                f"The 'bands' parameter must hold band numbers from 1 to {count}, got {int(b)}"
-            )
+            raise _out_of_range(int(b), count)
     if len(set(bands)) != len(bands):
-        raise ParameterError(f"The 'bands' parameter must not repeat a band, got {list(map(int, bands))}")
+        shown = list(map(int, bands[:20])) + (["..."] if len(bands) > 20 else [])
+        raise ParameterError(f"The 'bands' parameter must not repeat a band, got {shown}")
     return tuple(int(b) for b in bands)
 
 
@@ -621,8 +641,10 @@ class TempFiles:
         return tmp
 
     def discard(self, tmp):
-        """Remove one temporary now (and its side-car files)."""
+        """Remove one temporary now (and its side-car files); it is not committed."""
         _remove_with_sidecars(tmp)
+        self._pairs = [(t, f) for t, f in self._pairs if t != tmp]
+        self._extra = [t for t in self._extra if t != tmp]
 
     def commit(self):
         """Rename every temporary into place (``os.replace``, atomic per file)."""

@@ -16,9 +16,11 @@ import warnings
 import numpy as np
 import rasterio
 import rasterio.shutil
-from rasterio.errors import NotGeoreferencedWarning, RasterioError
+from rasterio.errors import NotGeoreferencedWarning
 
 from ..errors import ParameterError
+from .blocks import READ_ERRORS
+from .writing import _error_detail
 
 __all__ = [
     "DEFAULT_GTIFF_OPTIONS",
@@ -28,6 +30,8 @@ __all__ = [
     "cog_options",
     "choose_blocksize",
     "validate_creation_options",
+    "creation_option_error",
+    "COG_BLOCKSIZES",
 ]
 
 #: Defaults of the tiled GeoTIFF output (the block size is chosen per run).
@@ -153,8 +157,78 @@ def _gdal_warnings():
             lg.propagate = propagate
 
 
-def validate_creation_options(options, *, driver, dtype, count, name="creation_options"):
-    """Let GDAL check creation options on a tiny in-memory raster.
+#: Tile sides the COG driver's BLOCKSIZE may take: GDAL's own minimum (128,
+#: from its creation option list) to 4096, in steps of 16 (TIFF tiles are
+#: multiples of 16). GDAL is given no other value: it hangs or aborts on a
+#: negative, zero or non-numeric BLOCKSIZE, and larger tiles defeat a COG's
+#: purpose (a reader fetches whole tiles). The upper bound is geosr's choice.
+COG_BLOCKSIZES = range(128, 4096 + 1, 16)
+
+
+def _check_cog_blocksize(options, name):
+    """The COG tile side, checked before GDAL sees it."""
+    text = options.get("BLOCKSIZE", DEFAULT_COG_OPTIONS["BLOCKSIZE"])
+    size = int(text) if re.fullmatch(r"\+?\d{1,6}", text.strip()) else None
+    if size not in COG_BLOCKSIZES:
+        raise ParameterError(
+            f"The {name!r} parameter must give BLOCKSIZE a multiple of 16 from "
+            f"{COG_BLOCKSIZES.start} to {COG_BLOCKSIZES.stop - 1} for a COG, got {text!r}"
+        )
+    return size
+
+
+def creation_option_error(options, driver, reasons, name="creation_options"):
+    """The usage error for options GDAL refused, with GDAL's own reasons."""
+    given = ", ".join(f"{k}={v}" for k, v in options.items())
+    return ParameterError(
+        f"The {name!r} parameter must hold options the {driver} driver accepts, got "
+        f"{given}; GDAL says: {'; '.join(dict.fromkeys(reasons))}"
+    )
+
+
+def _try_options(options, driver, dtype, count, crs, transform):
+    """Write a small raster with the options in /vsimem/; GDAL's complaints, if any.
+
+    For a COG the raster is one pixel wider than a tile, so that GDAL builds
+    overviews and checks the options it reads only then (OVERVIEW_*).
+    """
+    width, height = 64, 64
+    if driver == "COG":
+        width, height = int(options.get("BLOCKSIZE", DEFAULT_COG_OPTIONS["BLOCKSIZE"])) + 1, 16
+    geo = {"crs": crs, "transform": transform} if crs is not None and transform is not None else {}
+    mem = f"/vsimem/geosr-check-{uuid.uuid4().hex}.tif"
+    src = f"/vsimem/geosr-check-src-{uuid.uuid4().hex}.tif"
+    zeros = np.zeros((count, height, width), dtype=dtype)
+    try:
+        with _gdal_warnings() as messages, warnings.catch_warnings():
+            warnings.simplefilter("ignore", NotGeoreferencedWarning)
+            try:
+                if driver == "COG":
+                    with rasterio.open(src, "w", driver="GTiff", width=width, height=height,
+                                       count=count, dtype=dtype, **geo) as ds:
+                        ds.write(zeros)
+                    rasterio.shutil.copy(src, mem, driver="COG", **options)
+                else:
+                    with rasterio.open(mem, "w", driver=driver, width=width, height=height,
+                                       count=count, dtype=dtype, **geo, **options) as ds:
+                        ds.write(zeros)
+            except (*READ_ERRORS, ValueError, TypeError) as exc:
+                messages.append(_error_detail(exc))
+        return [m.replace(mem, "the output").replace(src, "the output") for m in messages]
+    finally:
+        for path in (mem, src):
+            with contextlib.suppress(Exception):
+                rasterio.shutil.delete(path)
+
+
+def validate_creation_options(options, *, driver, dtype, count, name="creation_options",
+                              crs=None, transform=None):
+    """Let GDAL check creation options on a small in-memory raster.
+
+    For a COG the tile side is checked first (GDAL hangs on some values) and
+    the trial raster is wider than a tile, so that the options GDAL reads
+    only while it builds overviews (``OVERVIEW_RESAMPLING``...) are checked
+    too, before the run rather than after it.
 
     Parameters
     ----------
@@ -163,37 +237,20 @@ def validate_creation_options(options, *, driver, dtype, count, name="creation_o
     driver : {"GTiff", "COG"}
     dtype : str
     count : int
+    name : str
+        The parameter named in the error.
+    crs, transform : optional
+        The output's georeferencing, given to the trial raster (options such
+        as the COG's ``TILING_SCHEME`` need one).
 
     Raises
     ------
     ParameterError
-        When GDAL rejects an option or one of its values.
+        When GDAL rejects an option or one of its values (exit 2 on the
+        command line), with GDAL's reasons.
     """
-    size = 64
-    mem = f"/vsimem/geosr-check-{uuid.uuid4().hex}.tif"
-    src = f"/vsimem/geosr-check-src-{uuid.uuid4().hex}.tif"
-    try:
-        with _gdal_warnings() as messages, warnings.catch_warnings():
-            warnings.simplefilter("ignore", NotGeoreferencedWarning)
-            try:
-                if driver == "COG":
-                    with rasterio.open(src, "w", driver="GTiff", width=size, height=size,
-                                       count=count, dtype=dtype) as ds:
-                        ds.write(np.zeros((count, size, size), dtype=dtype))
-                    rasterio.shutil.copy(src, mem, driver="COG", **options)
-                else:
-                    with rasterio.open(mem, "w", driver=driver, width=size, height=size,
-                                       count=count, dtype=dtype, **options) as ds:
-                        ds.write(np.zeros((count, size, size), dtype=dtype))
-            except (RasterioError, ValueError, TypeError) as exc:
-                messages.append(str(exc))
-        if messages:
-            given = ", ".join(f"{k}={v}" for k, v in options.items())
-            raise ParameterError(
-                f"The {name!r} parameter must hold options the {driver} driver accepts, got "
-                f"{given}; GDAL says: {'; '.join(dict.fromkeys(messages))}"
-            )
-    finally:
-        for path in (mem, src):
-            with contextlib.suppress(Exception):
-                rasterio.shutil.delete(path)
+    if driver == "COG":
+        _check_cog_blocksize(options, name)
+    reasons = _try_options(options, driver, dtype, count, crs, transform)
+    if reasons:
+        raise creation_option_error(options, driver, reasons, name)

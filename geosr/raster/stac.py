@@ -11,11 +11,14 @@ sample distance in metres, a WGS84 footprint and bounding box, and a
 from __future__ import annotations
 
 import json
+import math
 import os
+import warnings
 from pathlib import Path
 
 from .._version import __version__
 from ..cautions import CAUTION
+from ..errors import GeoreferencingWarning
 from .transforms import crs_summary, ground_sample_distance, wgs84_footprint
 
 __all__ = ["STAC_VERSION", "EXTENSIONS", "stac_item", "write_stac_item", "stac_path"]
@@ -46,8 +49,39 @@ def _href(target, base_dir):
         return Path(os.path.abspath(target)).as_uri()
 
 
+def _footprint(crs, transform, width, height, gcps):
+    """Geometry, bbox and ground sample distance; None where they cannot be had.
+
+    A GCP-referenced raster (identity transform) is placed by the affine
+    transform fitted to its GCPs (``rasterio.transform.from_gcps``). A
+    footprint that cannot be computed is None with a warning: the sidecar
+    never fails the run (STAC allows a null geometry).
+    """
+    if gcps:
+        from rasterio.transform import from_gcps
+
+        transform = from_gcps(list(gcps))
+    try:
+        geometry, bbox = wgs84_footprint(crs, transform, width, height)
+        gsd = ground_sample_distance(crs, transform, width, height)
+    except Exception as exc:  # noqa: BLE001 - a sidecar problem never discards the raster
+        geometry, bbox, gsd = None, None, None
+        reason = f"{type(exc).__name__}: {exc}"
+    else:
+        reason = "its CRS has no way to WGS84 longitude and latitude, or no pixel lies on the earth"
+    values = [v for v in (bbox or []) + list(gsd or [])]
+    if not all(math.isfinite(v) for v in values):
+        geometry, bbox, gsd = None, None, None
+        reason = "part of it does not lie on the earth"
+    if crs is not None and geometry is None:
+        warnings.warn(f"The STAC sidecar has a null geometry: {reason}", GeoreferencingWarning,
+                      stacklevel=4)
+    return geometry, bbox, gsd
+
+
 def stac_item(*, dst, src, width, height, count, crs, transform, scale, method,
-              model_sha256, created, cog=False, band_names=None, source_name=None, sources=()):
+              model_sha256, created, cog=False, band_names=None, source_name=None, sources=(),
+              gcps=None):
     """Build the STAC Item for a magnified raster.
 
     Parameters
@@ -73,18 +107,25 @@ def stac_item(*, dst, src, width, height, count, crs, transform, scale, method,
     sources : sequence of (path, title), optional
         Further files the run read its pixels from (the guides of a guided
         run), listed as ``derived_from`` links.
+    gcps : sequence of rasterio.control.GroundControlPoint, optional
+        The output's GCPs (in its pixel coordinates) when it is referenced by
+        GCPs only; ``crs`` is then theirs. The footprint is placed by the
+        affine transform fitted to them and ``proj:transform`` is left out.
 
     Returns
     -------
     dict
-        A GeoJSON Feature. Without a CRS, ``geometry`` and ``bbox`` are
-        null/absent (STAC allows a null geometry).
+        A GeoJSON Feature. Without a CRS, or when the footprint cannot be
+        computed (a warning says why), ``geometry`` is null and ``bbox``
+        absent (STAC allows a null geometry).
     """
     dst = Path(os.path.abspath(dst))
     base = str(dst.parent)
-    geometry, bbox = wgs84_footprint(crs, transform, width, height)
-    summary = crs_summary(crs)
-    gsd = ground_sample_distance(crs, transform, width, height)
+    geometry, bbox, gsd = _footprint(crs, transform, width, height, gcps)
+    try:
+        summary = crs_summary(crs)
+    except Exception:  # noqa: BLE001 - a CRS pyproj cannot describe is left out
+        summary = None
     source_name = source_name or os.path.basename(os.fspath(src))
     props = {
         "datetime": created,
@@ -102,8 +143,9 @@ def stac_item(*, dst, src, width, height, count, crs, transform, scale, method,
         "geosr:model_sha256": str(model_sha256),
         "geosr:synthesized": True,
         "proj:shape": [int(height), int(width)],
-        "proj:transform": [transform.a, transform.b, transform.c, transform.d, transform.e, transform.f],
     }
+    if not gcps:
+        props["proj:transform"] = [transform.a, transform.b, transform.c, transform.d, transform.e, transform.f]
     if summary is not None:
         if summary["code"]:
             props["proj:code"] = summary["code"]
@@ -147,13 +189,13 @@ def stac_item(*, dst, src, width, height, count, crs, transform, scale, method,
             "type": "image/tiff; application=geotiff",
             "title": str(title),
         })
-    if bbox is not None:
+    if bbox is not None and geometry is not None:
         item["bbox"] = [float(v) for v in bbox]
     return item
 
 
 def write_stac_item(path, item):
-    """Write an Item as indented JSON (UTF-8)."""
+    """Write an Item as indented JSON (UTF-8); strict JSON (no NaN or infinity), checked before the file opens."""
+    text = json.dumps(item, indent=2, allow_nan=False)
     with open(path, "w", encoding="utf-8") as fh:
-        json.dump(item, fh, indent=2, allow_nan=False)
-        fh.write("\n")
+        fh.write(text + "\n")

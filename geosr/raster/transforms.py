@@ -279,13 +279,74 @@ def _close(ring):
     return ring
 
 
+def _grid_lonlat(tr, transform, width, height, n=257):
+    """WGS84 points of an n x n grid of pixel positions over the raster, the finite ones."""
+    t = np.linspace(0.0, 1.0, n)
+    cols, rows = np.meshgrid(t * width, t * height)
+    xs, ys = apply_transform(transform, cols.ravel(), rows.ravel())
+    with np.errstate(invalid="ignore"):
+        lon, lat = (np.asarray(v, dtype=float) for v in tr.transform(xs, ys, errcheck=False))
+    ok = np.isfinite(lon) & np.isfinite(lat) & (np.abs(lat) <= 90.0)
+    return lon[ok], lat[ok]
+
+
+def _partial_footprint(tr, transform, width, height):
+    """Bbox of the part of a raster that lies on the earth (its outline does not).
+
+    A geostationary full disk, say: the corners are in space. The bbox of a
+    grid of points that do reproject, as a rectangle geometry; None when no
+    point does.
+    """
+    lon, lat = _grid_lonlat(tr, transform, width, height)
+    if lon.size < 3:
+        return None, None
+    lon = np.sort((lon + 180.0) % 360.0 - 180.0)
+    gaps = np.diff(np.concatenate([lon, [lon[0] + 360.0]]))
+    k = int(np.argmax(gaps))  # the widest gap is where the footprint is not
+    west, east = float(lon[(k + 1) % lon.size]), float(lon[k])
+    south, north = float(lat.min()), float(lat.max())
+    if gaps[k] <= 360.0 / 256:  # no gap wider than a grid step: all round the globe
+        west, east = -180.0, 180.0
+    return _bbox_geometry(west, south, east, north), [west, south, east, north]
+
+
+def _bbox_geometry(west, south, east, north):
+    """A bbox as a GeoJSON geometry, cut at the antimeridian when west > east (RFC 7946, 3.1.9)."""
+    def box(w, e):
+        return [_close([(w, south), (e, south), (e, north), (w, north)])]
+
+    if west <= east:
+        return {"type": "Polygon", "coordinates": box(west, east)}
+    return {"type": "MultiPolygon", "coordinates": [box(west, 180.0), box(-180.0, east)]}
+
+
+def _wgs84_transformer(crs):
+    """A transformer to WGS84 longitude/latitude, or None when there is no way there."""
+    from pyproj.exceptions import CRSError, ProjError
+
+    try:
+        pc = _proj(crs)
+        if pc is None or pc.type_name.startswith("Engineering") or pc.is_engineering:
+            return None
+        return Transformer.from_crs(pc, ProjCRS.from_epsg(4326), always_xy=True)
+    except (CRSError, ProjError, AttributeError):
+        return None
+
+
+#: Degrees of longitude by which an outline may overshoot +-180 from rounding.
+_LON_SLACK = 1e-6
+
+
 def wgs84_footprint(crs, transform, width, height, densify=21):
     """WGS84 outline of a raster as a GeoJSON geometry, with its bounding box.
 
     The four edges are densified (``densify`` extra points each) before
     reprojection, so curved outlines keep their shape. A footprint that
     crosses the antimeridian is split there into a MultiPolygon, and the
-    bounding box then has ``west > east`` (RFC 7946, 3.1.9 and 5.2).
+    bounding box then has ``west > east`` (RFC 7946, 3.1.9 and 5.2); one
+    that spans every longitude (a global raster) is ``-180 .. 180``. The
+    latitudes of the bounding box come from pyproj's densified bounds
+    transformation when the grid is not rotated.
 
     Parameters
     ----------
@@ -298,12 +359,19 @@ def wgs84_footprint(crs, transform, width, height, densify=21):
     -------
     geometry : dict or None
     bbox : list of float or None
+        Both None when there is no footprint: no CRS, a CRS with no way to
+        WGS84 (an engineering CRS), or no pixel that lies on the earth. The
+        values are always finite.
     """
-    if crs is None:
+    tr = None if crs is None else _wgs84_transformer(crs)
+    if tr is None:
         return None, None
-    lon, lat = _unwrapped_ring(crs, transform, width, height, densify)
+    try:
+        lon, lat = _unwrapped_ring(crs, transform, width, height, densify)
+    except Exception:  # noqa: BLE001 - PROJ refusing the outline means "no outline"
+        lon = lat = np.array([np.nan])
     if not (np.isfinite(lon).all() and np.isfinite(lat).all()):
-        return None, wgs84_bbox(crs, transform, width, height, densify)
+        return _partial_footprint(tr, transform, width, height)
     turn = lon[-1] - lon[0] + ((lon[0] - lon[-1] + 180.0) % 360.0 - 180.0)
     if abs(turn) > 180.0:
         # The outline winds round a pole: close it through the pole.
@@ -313,11 +381,34 @@ def wgs84_footprint(crs, transform, width, height, densify=21):
         south = float(lat.min()) if pole > 0 else -90.0
         north = 90.0 if pole > 0 else float(lat.max())
         return geometry, [-180.0, south, 180.0, north]
+    south, north = _densified_latitudes(tr, transform, width, height, densify, lat)
+    if lon.max() - lon.min() >= 360.0 - _LON_SLACK:
+        # Every longitude: a global raster (RFC 7946, 5.2: -180 .. 180).
+        return _bbox_geometry(-180.0, south, 180.0, north), [-180.0, south, 180.0, north]
+    if lon.max() <= 180.0 + _LON_SLACK:
+        lon = np.minimum(lon, 180.0)
+        points = list(zip(lon.tolist(), lat.tolist()))
+        return {"type": "Polygon", "coordinates": [_close(points)]}, [
+            float(lon.min()), south, float(lon.max()), north]
     bbox = _bbox_of_ring(lon, lat)
     points = list(zip(lon.tolist(), lat.tolist()))
-    if lon.max() <= 180.0:
-        return {"type": "Polygon", "coordinates": [_close(points)]}, bbox
     west_part = _clip_ring(points, True, 180.0)
     east_part = [(x - 360.0, y) for x, y in _clip_ring(points, False, 180.0)]
     polys = [[_close(p)] for p in (west_part, east_part) if len(p) >= 3]
-    return {"type": "MultiPolygon", "coordinates": polys}, bbox
+    return {"type": "MultiPolygon", "coordinates": polys}, [bbox[0], south, bbox[2], north]
+
+
+def _densified_latitudes(tr, transform, width, height, densify, lat):
+    """South and north of the raster: pyproj's densified bounds for a north-up grid, else the outline's."""
+    south, north = float(lat.min()), float(lat.max())
+    if transform.b != 0 or transform.d != 0:
+        return south, north
+    xs, ys = _edge_points(transform, width, height, 0)
+    try:
+        _, s, _, n = tr.transform_bounds(float(xs.min()), float(ys.min()), float(xs.max()),
+                                         float(ys.max()), densify_pts=densify)
+    except Exception:  # noqa: BLE001 - the outline's latitudes are a fine fallback
+        return south, north
+    if np.isfinite(s) and np.isfinite(n) and -90.0 <= s <= n <= 90.0:
+        return float(min(s, south)), float(max(n, north))
+    return south, north

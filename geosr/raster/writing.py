@@ -253,10 +253,41 @@ def copy_to_cog(src, dst, options):
     src, dst : str or os.PathLike
     options : dict
         COG creation options.
+
+    Raises
+    ------
+    ParameterError
+        GDAL refused an option (they are checked before the run by
+        ``validate_creation_options``; this is the last line of defence).
+    DestinationError
+        The copy could not be written.
     """
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", NotGeoreferencedWarning)
             rasterio.shutil.copy(str(src), str(dst), driver="COG", **options)
     except READ_ERRORS as exc:
+        if _refused_option(exc, dst):
+            from .profiles import creation_option_error
+
+            raise creation_option_error(options, "COG", [_error_detail(exc)]) from None
         raise _destination_error(dst, exc, "writing the COG") from None
+
+
+#: Words of GDAL's messages about reading or writing files.
+_IO_WORDS = ("write", "writing", "read", "space", "disk", "i/o", "file", "quota")
+
+
+def _refused_option(exc, dst):
+    """True when GDAL's error is about an option, not about the disk (a heuristic).
+
+    An OSError, a message about files or space, or a nearly full disk mean a
+    destination problem; anything else GDAL raises while copying an already
+    written raster comes from an option (an unknown resampling, a bad tile size).
+    """
+    if isinstance(exc, OSError) or any(w in _error_detail(exc).lower() for w in _IO_WORDS):
+        return False
+    try:
+        return shutil.disk_usage(os.path.dirname(os.path.abspath(dst))).free >= 2**20
+    except OSError:
+        return False

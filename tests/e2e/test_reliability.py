@@ -358,6 +358,45 @@ SOURCE_CHECKS = {
 }
 
 
+# --- round 2: options, models, STAC sidecar, interruptions with workers
+def make_thin(env):
+    return _write(env.work / "thin.tif", camera(5, 40).astype(np.uint8))  # 5 rows: under one 6-row patch at x2
+
+
+def model_fifo(env):
+    path = env.work / "pipe.npz"
+    os.mkfifo(path)  # opening it for reading would block until a writer comes
+    return path
+
+
+def model_text(env):
+    path = env.work / "notes.npz"
+    path.write_text("band,weight\n1,0.5\n")
+    return path
+
+
+def make_geostationary(env):
+    crs = rasterio.crs.CRS.from_proj4("+proj=geos +h=35785831 +lon_0=0 +sweep=y +a=6378137 +b=6356752.3")
+    return _write(env.work / "geos.tif", camera(40, 40).astype(np.uint8), crs=crs,
+                  transform=Affine(300000, 0, -6000000, 0, -300000, 6000000))  # corners in space
+
+
+def make_local_cs(env):
+    crs = rasterio.crs.CRS.from_wkt('LOCAL_CS["site grid",UNIT["metre",1]]')
+    return _write(env.work / "local.tif", camera(40, 44).astype(np.uint8), crs=crs,
+                  transform=Affine(1, 0, 0, 0, -1, 0.5))
+
+
+def make_global(env):
+    return _write(env.work / "global.tif", camera(40, 40).astype(np.uint8), crs="EPSG:4326",
+                  transform=Affine(9, 0, -180, 0, -4.5, 90))
+
+
+def make_antimeridian(env):
+    return _write(env.work / "anti.tif", camera(40, 40).astype(np.uint8), crs="EPSG:4326",
+                  transform=Affine(0.1, 0, 178, 0, -0.1, 10))
+
+
 # ------------------------------------------------------------------- the table
 @dataclasses.dataclass(frozen=True)
 class Case:
@@ -529,6 +568,50 @@ CASES = [
     Case("non-utf8-name", "SRC's name has bytes that are not UTF-8 (caf\\xe9.tif)", make_non_utf8_name,
          code=1, message="must have a name GDAL can open (valid UTF-8)",
          advice="Rename the file, or link to it under a UTF-8 name."),
+    # --- round 2: options, models, STAC sidecar, interruptions with workers
+    Case("bands-huge-range", "--bands 1-1000000", scene, ("--bands", "1-1000000"), code=2,
+         message="from 1 to 65536", advice="Name bands that exist; see gdalinfo for the count."),
+    Case("bands-beyond-count", "--bands names a band SRC does not have", scene, ("--bands", "1-3"),
+         code=2, message="got 2; the raster has 1 band", advice="Name bands from 1 to SRC's band count."),
+    Case("model-named-pipe", "--model is a named pipe", scene, ("--model", "{extra}"), code=1,
+         message="must be a regular file, got a named pipe", extra=model_fifo,
+         advice="Give the model file itself."),
+    Case("model-text-named-npz", "--model is a text file named .npz", scene, ("--model", "{extra}"),
+         code=1, message="not an .npz (zip) archive", extra=model_text,
+         advice="Use a model file written by geosr train."),
+    Case("self-train-too-small", "--self-train on a SRC smaller than one training patch", make_thin,
+         ("--self-train", "--scale", "2"), code=1, message="at least 6 x 6 pixels",
+         advice="Train on a larger reference (geosr train) and pass --model."),
+    Case("co-refused-with-reason", "--co value the format cannot take (WEBP on 1 band)", scene,
+         ("--co", "COMPRESS=WEBP"), code=2, message="Must be 3 (RGB) or 4 (RGBA) bands",
+         advice="Use a value GDAL's reason allows."),
+    Case("cog-overview-resampling", "--cog with --co OVERVIEW_RESAMPLING=FOO", scene,
+         ("--cog", "--co", "OVERVIEW_RESAMPLING=FOO"), code=2, message="Unsupported resampling method",
+         advice="Use a resampling GDAL knows (NEAREST, AVERAGE, ...)."),
+    Case("cog-blocksize", "--cog with --co BLOCKSIZE=17", scene, ("--cog", "--co", "BLOCKSIZE=17"),
+         code=2, message="BLOCKSIZE a multiple of 16 from 128 to 4096",
+         advice="Use a tile side such as 256 or 512."),
+    Case("stac-geostationary", "--stac on a geostationary full disk (corners in space)",
+         make_geostationary, ("--stac",), code=0, message="geosr: wrote", kind="stac",
+         advice="Nothing: the footprint covers the part on the earth."),
+    Case("stac-engineering-crs", "--stac on an engineering (LOCAL_CS) CRS", make_local_cs,
+         ("--stac",), code=0, message="geosr: warning: The STAC sidecar has a null geometry",
+         kind="stac", advice="Nothing: the raster and the sidecar are written, without a footprint."),
+    Case("stac-global", "--stac on a global raster, -180 to 180", make_global, ("--stac",), code=0,
+         message="geosr: wrote", kind="stac", advice="Nothing: the bbox is -180 to 180."),
+    Case("stac-antimeridian", "--stac on a raster crossing the antimeridian", make_antimeridian,
+         ("--stac",), code=0, message="geosr: wrote", kind="stac",
+         advice="Nothing: the footprint is cut at 180 and the bbox has west > east (RFC 7946)."),
+    Case("stac-gcp-only", "--stac on a GCP-only SRC", make_gcp_only, ("--stac",), code=0,
+         message="geosr: wrote", kind="stac", advice="Nothing: the footprint follows the GCPs."),
+    Case("sigint-group-workers", "Ctrl-C in a terminal during --workers 2", scene,
+         ("--workers", "2"), code=130, message="interrupted", kind="group-signal",
+         advice="Run again; nothing was left behind."),
+    Case("sigint-group-processes", "Ctrl-C in a terminal during --scheduler processes", scene,
+         ("--scheduler", "processes", "--workers", "2"), code=130, message="interrupted",
+         kind="group-signal", advice="Run again; nothing was left behind."),
+    Case("sigterm-workers", "SIGTERM during --workers 2", scene, ("--workers", "2"), code=143,
+         message="terminated", kind="group-signal", advice="Run again; nothing was left behind."),
 ]
 
 
@@ -659,9 +742,11 @@ def read_only_folder(where):
 class Run:
     """The venv's geosr console script in a subprocess, stderr read line by line."""
 
-    def __init__(self, args, cwd=None):
+    def __init__(self, args, cwd=None, session=False):
+        # session: a process group of its own, as a terminal's foreground job
         self.proc = subprocess.Popen([str(GEOSR), *map(str, args)], stdout=subprocess.PIPE,
-                                     stderr=subprocess.PIPE, text=True, cwd=cwd)
+                                     stderr=subprocess.PIPE, text=True, cwd=cwd,
+                                     start_new_session=session)
         self.lines = []
         self.progressed = threading.Event()
         self.reader = threading.Thread(target=self._read, daemon=True)
@@ -701,7 +786,7 @@ def _big_scene(env, rows=240, cols=240):
 
 # ------------------------------------------------------------------ the test
 #: Cases that run the console script for many seconds (still run by make test).
-SLOW_KINDS = ("signal", "sigkill", "worker-killed", "disk-full")
+SLOW_KINDS = ("signal", "sigkill", "worker-killed", "disk-full", "group-signal")
 
 
 @pytest.mark.parametrize("case", [
@@ -712,7 +797,7 @@ def test_case(case, env, monkeypatch):
     kind = case.kind
     if kind == "small-disk":
         return _small_disk(case, env, _fill(case.args, env, case))
-    if kind in ("signal", "sigkill", "worker-killed"):
+    if kind in ("signal", "sigkill", "worker-killed", "group-signal"):
         pytest.importorskip("distributed")
         return _interruption(case, env)
     src = case.make(env)
@@ -758,6 +843,9 @@ def test_case(case, env, monkeypatch):
     elif kind == "success":
         assert os.listdir(folder) == ["o.tif"]
         _check_success_output(src, dst, case)
+    elif kind == "stac":
+        assert sorted(os.listdir(folder)) == ["o.json", "o.tif"]
+        _check_stac_sidecar(folder / "o.json", case)
     else:
         assert os.listdir(folder) == [], os.listdir(folder)
     assert _temps(folder) == [] and _temps(src.parent if src.parent.exists() else folder) == []
@@ -876,9 +964,55 @@ def _interruption(case, env):
         check_stderr(stderr, case)
         check_message(stdout, stderr, case)
         assert os.listdir(env.out) == ["o.tif"]  # the stale temporary was recognised and removed
+    elif case.kind == "group-signal":
+        _group_signal(case, env, src, dst)
     else:
         _worker_killed(case, env, src, dst)
     assert _digest(src) == before_src
+
+
+def _group_signal(case, env, src, dst):
+    """Ctrl-C in a terminal: SIGINT to the whole process group, workers included."""
+    run = Run([*slow_args(src, dst, env), *case.args], session=True)
+    run.wait_for_progress(timeout=300)
+    if case.id.startswith("sigterm"):
+        run.proc.send_signal(signal.SIGTERM)  # to geosr only, as a service manager does
+    else:
+        os.killpg(run.proc.pid, signal.SIGINT)
+    code, stdout, stderr = run.finish(timeout=300)
+    assert code == case.code, stderr
+    check_stderr(stderr, case)  # exactly one line, no worker's traceback
+    assert [ln for ln in stderr.splitlines() if not ln.startswith("magnify: ")] == [
+        f"geosr: error: {case.message}"], stderr
+    assert os.listdir(env.out) == []
+
+
+def _check_stac_sidecar(path, case):
+    """Strict JSON; RFC 7946: bbox [west, south, east, north], south <= north, west > east
+    only across the antimeridian (5.2), the geometry cut there (3.1.9), rings closed."""
+    def no_constant(name):
+        raise AssertionError(f"{name} in the sidecar")
+
+    item = json.loads(path.read_text(), parse_constant=no_constant)
+    if case.id == "stac-engineering-crs":
+        assert item["geometry"] is None and "bbox" not in item
+        return
+    west, south, east, north = item["bbox"]
+    assert -180 <= min(west, east) and max(west, east) <= 180 and -90 <= south <= north <= 90
+    geom = item["geometry"]
+    polys = [geom["coordinates"]] if geom["type"] == "Polygon" else geom["coordinates"]
+    assert all(p[0][0] == p[0][-1] for p in polys)
+    assert all(-180 <= x <= 180 and -90 <= y <= 90 for p in polys for x, y in p[0])
+    if case.id == "stac-global":
+        assert (west, east) == (-180, 180)
+    elif case.id == "stac-antimeridian":
+        assert west > east and geom["type"] == "MultiPolygon"
+        assert (west, east) == (pytest.approx(178), pytest.approx(-178))
+    elif case.id == "stac-gcp-only":
+        # the GCPs are at UTM 18N 500000..500950 E, 4199250..4200100 N: about 75 W, 37.9 N
+        assert -75.01 < west < east < -74.98 and 37.92 < south < north < 37.95
+    else:
+        assert west < east
 
 
 def _worker_killed(case, env, src, dst):

@@ -189,3 +189,37 @@ def test_joining_a_running_scheduler_by_address(monkeypatch):
     monkeypatch.setattr(geosr.parallel.schedule, "CONNECT_TIMEOUT", "2s")
     with pytest.raises(RunError, match="reachable"):
         run_tasks(square, [1], {"offset": 0}, got.append, scheduler="tcp://127.0.0.1:9")
+
+
+# --- round 2: worker processes leave Ctrl-C to the main process
+def sigint_disposition(job, shared):
+    import signal
+
+    return signal.getsignal(signal.SIGINT) == signal.SIG_IGN
+
+
+def test_process_pool_workers_ignore_sigint():
+    # Ctrl-C sends SIGINT to the whole terminal group: a worker that handled
+    # it would print its own traceback beside the main process's one line.
+    got = []
+    run_tasks(sigint_disposition, range(2), None, got.append, scheduler="processes", workers=2)
+    assert got == [True, True]
+
+
+def test_cluster_preload_ignores_sigint_in_the_main_thread_only():
+    import signal
+    import threading
+
+    from geosr.parallel import _quiet_worker
+
+    previous = signal.getsignal(signal.SIGINT)
+    try:
+        seen = []
+        thread = threading.Thread(target=lambda: (_quiet_worker.dask_setup(None), seen.append(1)))
+        thread.start()
+        thread.join()
+        assert seen == [1] and signal.getsignal(signal.SIGINT) == previous  # no-op off the main thread
+        _quiet_worker.dask_setup(None)
+        assert signal.getsignal(signal.SIGINT) == signal.SIG_IGN
+    finally:
+        signal.signal(signal.SIGINT, previous)

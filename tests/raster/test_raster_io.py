@@ -161,3 +161,23 @@ def test_inspect_never_modifies_the_source(shared_file):
     with rasterio.open(src) as ds:
         ds.read(1, window=((0, 10), (0, 10)))
     assert (sha256_of(src), sorted(os.listdir(src.parent))) == before
+
+
+# --- round 2: band lists against the raster's count
+def test_check_bands_names_the_raster_count_before_expanding():
+    import time
+
+    from geosr.errors import ParameterError
+    from geosr.raster.io import check_bands, parse_bands
+
+    start = time.perf_counter()
+    with pytest.raises(ParameterError, match=r"from 1 to 3, got 1000000000; the raster has 3 bands"):
+        check_bands("1-1000000000", 3)
+    with pytest.raises(ParameterError, match=r"from 1 to 1, got 2; the raster has 1 band$"):
+        check_bands((1, 2), 1)
+    with pytest.raises(ParameterError, match="from 1 to 65536"):
+        parse_bands("1-1000000")
+    assert time.perf_counter() - start < 0.5
+    assert check_bands("2-3,1", 3) == (2, 3, 1)
+    with pytest.raises(ParameterError, match="must not repeat"):
+        check_bands("1-3,2", 3)

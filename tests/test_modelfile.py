@@ -1,0 +1,92 @@
+"""Model files that are not regular files or not archives get geosr's own one-line errors."""
+
+from __future__ import annotations
+
+import os
+import threading
+
+import numpy as np
+import pytest
+
+from geosr.errors import ModelError
+from geosr.modelfile import default_model_path, load_guided_model, load_models
+
+
+def _load_in_thread(loader, path, timeout=10):
+    """Run loader(path) in a thread: the error it raised, or a failure if it blocks."""
+    out = {}
+
+    def run():
+        try:
+            loader(path)
+        except Exception as exc:  # noqa: BLE001 - handed to the test
+            out["error"] = exc
+
+    thread = threading.Thread(target=run, daemon=True)
+    thread.start()
+    thread.join(timeout)
+    if thread.is_alive():
+        with open(path, "wb"):  # a writer releases a reader blocked on the pipe
+            pass
+        thread.join(timeout)
+        pytest.fail(f"{loader.__name__} blocked on {path}")
+    return out.get("error")
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="no named pipes here")
+@pytest.mark.parametrize("loader", [load_models, load_guided_model])
+def test_named_pipe_refused_without_opening_it(tmp_path, loader):
+    fifo = tmp_path / "model.npz"
+    os.mkfifo(fifo)
+    error = _load_in_thread(loader, fifo)
+    assert isinstance(error, ModelError)
+    assert "must be a regular file, got a named pipe" in str(error)
+
+
+def test_device_refused(tmp_path):
+    with pytest.raises(ModelError, match="must be a regular file, got a device"):
+        load_models(os.devnull)
+
+
+@pytest.mark.parametrize("content, reason", [
+    (b"header,value\n1,2\n", "not an .npz (zip) archive"),
+    (b"", "an empty file"),
+    (b"\x93NUMPY\x01\x00v\x00{'descr': '|O', 'fortran_order': False, 'shape': (1,), }", "not an .npz"),
+])
+def test_not_an_archive_gets_geosrs_words(tmp_path, content, reason):
+    path = tmp_path / "renamed.npz"
+    path.write_bytes(content)
+    with pytest.raises(ModelError) as info:
+        load_models(path)
+    assert reason in str(info.value)
+    assert "pickle" not in str(info.value).lower()
+
+
+def test_object_arrays_never_loaded_and_never_advised(tmp_path):
+    path = tmp_path / "objects.npz"
+    np.savez(path, header=np.array([{"format": "geosr-model"}], dtype=object))
+    with pytest.raises(ModelError) as info:
+        load_models(path)
+    assert "holds Python objects, which geosr never loads" in str(info.value)
+    assert "pickle" not in str(info.value).lower()
+
+
+def test_truncated_archive(tmp_path):
+    path = tmp_path / "cut.npz"
+    with default_model_path(2).open("rb") as fh:
+        path.write_bytes(fh.read()[:2000])
+    with pytest.raises(ModelError, match=r"damaged or truncated \.npz archive"):
+        load_models(path)
+
+
+def test_no_geosr_message_advises_unpickling():
+    # numpy's own message for object arrays says "allow_pickle=True"; no
+    # string in geosr's sources may carry that advice to the user.
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    for folder, _, files in os.walk(os.path.join(root, "geosr")):
+        for name in files:
+            if name.endswith(".py"):
+                with open(os.path.join(folder, name), encoding="utf-8") as fh:
+                    text = fh.read()
+                assert "allow_pickle=True" not in text, name
+                assert "allow_pickle=" not in text.replace("allow_pickle=False", ""), name
