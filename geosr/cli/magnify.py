@@ -53,6 +53,14 @@ from . import options
     "--stac", is_flag=True, default=False, help="Also write a STAC Item JSON beside DST."
 )
 @click.option(
+    "--detail-map",
+    type=click.Path(dir_okay=False),
+    default=None,
+    metavar="PATH",
+    help="Also write a float32 GeoTIFF of the synthesized detail per pixel (RMS over bands "
+    "of DST minus the bicubic interpolation of SRC).",
+)
+@click.option(
     "--max-output",
     "max_output_bytes",
     type=options.ByteSize(),
@@ -73,7 +81,7 @@ from . import options
 @click.pass_context
 def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degradation, scale, method, bands,
             guides, guide_bands, chunk, workers, scheduler, creation_options, cog, overwrite, consistency, ensemble, spectral_guard,
-            stac, max_output_bytes, no_space_check, quiet):
+            stac, detail_map, max_output_bytes, no_space_check, quiet):
     """Magnify the raster SRC by an integer factor into DST.
 
     The CRS is kept, the geotransform refined, nodata and band metadata
@@ -139,6 +147,7 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
             progress=bar,
             guide=list(guides) or None,
             guide_bands=list(guide_bands) if guide_bands else None,
+            detail_map=detail_map,
         )
     options.report(ctx, f"geosr: wrote {_summary(result)}")
     _report_guided(ctx, result)

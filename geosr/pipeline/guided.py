@@ -34,6 +34,7 @@ from ..errors import InputError, ModelError, ParameterError
 from ..parallel.schedule import run_tasks
 from ..raster.blocks import (
     BlockPlan,
+    bicubic_block,
     block_result,
     block_values,
     nearest_magnify,
@@ -243,7 +244,11 @@ def _guided_task(job, shared):
             values[i] = np.where(need, back[i], values[i])
             ok[i] = np.where(need, back_ok[i], ok[i])
             n_fallback += int((need & ok[i]).sum())
-    return block_result(bp, block, values, ok, None, n_fallback)
+    bases = None
+    if bp.detail:
+        bases = np.stack([bicubic_block(data[i], h, None if valid[i].all() else valid[i], s)
+                          for i in magnified])
+    return block_result(bp, block, values, ok, None, n_fallback, bases)
 
 
 @dataclasses.dataclass(frozen=True)

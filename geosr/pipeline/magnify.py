@@ -12,6 +12,7 @@ end.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import logging
 import os
@@ -24,9 +25,9 @@ import numpy as np
 
 from .._validation import check_bool, check_int, check_scale
 from ..enums import Method
-from ..errors import GeoreferencingWarning, InputError, ParameterError
+from ..errors import DestinationError, GeoreferencingWarning, InputError, ParameterError
 from ..parallel.schedule import ProgressCallback, SchedulerSpec, resolve_scheduler, run_tasks
-from ..raster.blocks import BlockPlan, ResidualStats, magnify_one_block
+from ..raster.blocks import BlockPlan, DetailStats, ResidualStats, magnify_one_block
 from ..raster.io import (
     SourceInfo,
     TempFiles,
@@ -132,10 +133,11 @@ class _Options:
     scheduler: SchedulerSpec
     creation_options: dict[str, str]
     progress: ProgressCallback | None
+    detail_map: Any = None
 
 
 def _check_options(model, *, scale, method, chunk_size, workers, scheduler, creation_options,
-                   max_output_bytes, training, retries, progress, guided=False, **flags):
+                   max_output_bytes, training, retries, progress, guided=False, detail_map=None, **flags):
     """Validate every option before the source is opened.
 
     ``guided``: a guide is given; it learns on the scene unless a guided
@@ -160,7 +162,7 @@ def _check_options(model, *, scale, method, chunk_size, workers, scheduler, crea
         scale=scale, method=method, chunk_size=chunk_size, training=training, retries=retries,
         progress=progress,
         check_free_space=flags.pop("check_free_space"), max_output_bytes=max_output_bytes,
-        scheduler=spec, creation_options=user_opts, **flags,
+        scheduler=spec, creation_options=user_opts, detail_map=detail_map, **flags,
     )
 
 
@@ -168,16 +170,30 @@ def _output_dtype(info: SourceInfo, bands: Sequence[int]) -> str:
     return str(np.result_type(*[info.dtypes[b - 1] for b in bands]))
 
 
+def _check_detail_destination(detail_map, reads, outputs, overwrite):
+    """The detail map's path, checked: none of the files read, and not another output."""
+    path = check_destination(detail_map, reads, overwrite, name="detail_map")
+    for out in outputs:
+        if out is not None and os.path.realpath(out) == os.path.realpath(path):
+            raise DestinationError(
+                f"The detail map {os.fspath(detail_map)!r} must differ from the other outputs, "
+                f"got {os.fspath(out)!r}"
+            )
+    return path
+
+
 def _check_destinations(info, dst, count, scale, dtype, opts, reads=None):
-    """The output path and the STAC path (or None), checked; the size refused early.
+    """The output, STAC and detail map paths (or None), checked; the size refused early.
 
     ``reads`` lists every file the run reads (the source by default).
     """
     reads = list(reads or [info.path])
     dst_path = check_destination(dst, reads, opts.overwrite)
-    stac_dst = None
+    stac_dst = detail_dst = None
     if opts.stac:
         stac_dst = check_destination(stac_path(dst_path), [*reads, dst_path], opts.overwrite, name="stac")
+    if opts.detail_map is not None:
+        detail_dst = _check_detail_destination(opts.detail_map, reads, (dst_path, stac_dst), opts.overwrite)
     out_bytes = scale * scale * info.width * info.height * count * np.dtype(dtype).itemsize
     if out_bytes > opts.max_output_bytes:
         raise InputError(
@@ -189,7 +205,7 @@ def _check_destinations(info, dst, count, scale, dtype, opts, reads=None):
         )
     if opts.check_free_space:
         _check_free_space(dst_path.parent, out_bytes * (2 if opts.cog else 1))
-    return dst_path, stac_dst
+    return dst_path, stac_dst, detail_dst
 
 
 def _self_train(info, magnified, scale, opts):
@@ -226,6 +242,8 @@ def _plan(src, dst, model, bands, opts):
     plan = plan_blocks(info, split, list(models), scale, dtype=dtype, chunk_size=opts.chunk_size,
                        consistency=opts.consistency, ensemble=opts.ensemble,
                        spectral_guard=opts.spectral_guard, retries=opts.retries)
+    if opts.detail_map is not None:
+        plan = dataclasses.replace(plan, block_plan=dataclasses.replace(plan.block_plan, detail=True))
     return plan, dests
 
 
@@ -341,8 +359,12 @@ def _single_image_run(plan):
     return BlockRun(_magnify_task, [_MagnifyJob(bp, b) for b in plan.blocks], list(plan.models))
 
 
-def _run_blocks(plan, output, tmp, opts, run=None):
-    """Magnify every block into ``tmp``; the consistency residuals (or None)."""
+def _run_blocks(plan, output, tmp, opts, run=None, detail=None):
+    """Magnify every block into ``tmp``; the consistency residuals (or None).
+
+    ``detail`` (a :class:`_DetailMap`) also writes the blocks' detail
+    magnitude into its temporary and sums its statistics.
+    """
     from ..raster.writing import OutputRaster
 
     bp = plan.block_plan
@@ -350,11 +372,18 @@ def _run_blocks(plan, output, tmp, opts, run=None):
     n_magnified = sum(1 for r in bp.roles if r >= 0)
     counts = {"valid": 0, "fallback": 0, "residual": ResidualStats.empty(len(bp.bands)),
               "pixels": plan.scale ** 2 * plan.info.width * plan.info.height * n_magnified}
-    with OutputRaster(tmp, output.profile, plan.scale, write_mask=bp.mode is MaskMode.MASK) as out:
+    with OutputRaster(tmp, output.profile, plan.scale, write_mask=bp.mode is MaskMode.MASK) as out, \
+            contextlib.ExitStack() as stack:
         out.set_metadata(plan.info, bp.bands, output.tags, output.band_tags)
+        detail_out = None
+        if detail is not None:
+            detail_out = stack.enter_context(detail.raster(plan, output))
+            detail.describe(detail_out, plan, output)
 
         def consume(result):
             out.write(result)
+            if detail_out is not None:
+                detail.write(detail_out, result)
             counts["valid"] += result.n_valid
             counts["fallback"] += result.n_fallback
             if result.residual is not None:
@@ -369,6 +398,9 @@ def _run_blocks(plan, output, tmp, opts, run=None):
             _warn_residuals(residuals)
         if run.finish is not None:
             out.update_tags(*run.finish(counts))
+        if detail_out is not None:
+            out.update_tags(detail.tags())
+            detail_out.update_tags(detail.tags())
     if counts["valid"] == 0 and n_magnified:
         warnings.warn(
             f"The source raster {plan.info.name!r} has no valid pixel in the magnified bands; "
@@ -377,6 +409,72 @@ def _run_blocks(plan, output, tmp, opts, run=None):
             stacklevel=4,
         )
     return residuals
+
+
+#: What a detail map holds (its ``GEOSR_DETAIL_DEFINITION`` tag).
+DETAIL_DEFINITION = (
+    "per pixel, the RMS over the magnified bands of the output minus the bicubic "
+    "interpolation of the input, in the output's units; NaN where the output is invalid"
+)
+
+
+@dataclasses.dataclass
+class _DetailMap:
+    """The detail map of a run: final path, temporary and running statistics."""
+
+    path: Any
+    tmp: Any
+    stats: DetailStats = dataclasses.field(default_factory=DetailStats)
+
+    def raster(self, plan, output):
+        """The temporary float32 GeoTIFF on the output grid (not yet open)."""
+        from ..raster.writing import OutputRaster
+
+        profile = {"driver": "GTiff", "count": 1, "dtype": "float32", "nodata": float("nan")}
+        profile.update({k: output.profile[k] for k in ("width", "height", "crs", "transform")
+                        if k in output.profile})
+        profile.update(gtiff_options({}, "float32", choose_blocksize(plan.scale * plan.chunk)))
+        return OutputRaster(self.tmp, profile, plan.scale)
+
+    def describe(self, raster, plan, output):
+        """The output's provenance tags, the definition and the georeferencing by GCPs or RPCs."""
+        from ..raster.transforms import scale_rpcs
+
+        info = plan.info
+        tags = dict(output.tags)
+        tags["GEOSR_DETAIL_DEFINITION"] = DETAIL_DEFINITION
+        tags["TIFFTAG_IMAGEDESCRIPTION"] = f"geosr detail map: {DETAIL_DEFINITION}"
+        raster.update_tags(tags)
+        raster.ds.set_band_description(1, "detail magnitude")
+        if info.transform.is_identity and info.gcps:
+            raster.ds.gcps = (scale_gcps(info.gcps, plan.scale), info.gcps_crs)
+        if info.rpcs is not None:
+            raster.ds.rpcs = scale_rpcs(info.rpcs, plan.scale)
+
+    def write(self, raster, result):
+        """Write a block's detail and add it to the statistics."""
+        raster.write(dataclasses.replace(result, data=result.detail[np.newaxis], mask=None))
+        self.stats.add(result.detail)
+
+    def tags(self):
+        """``GEOSR_DETAIL_*`` tags: the map's file name and its mean, 95th percentile and maximum."""
+        summary = self.stats.summary()
+        tags = {f"GEOSR_DETAIL_{k.upper()}": f"{v:.6g}" for k, v in summary.items()}
+        tags["GEOSR_DETAIL_MAP"] = os.path.basename(os.fspath(self.path))
+        return tags
+
+    def add_to_stac(self, item, dst_path):
+        """A second asset (the map, role "metadata") and its statistics as properties."""
+        item["assets"]["detail"] = {
+            "href": os.path.relpath(os.path.abspath(self.path), os.path.dirname(os.path.abspath(dst_path))),
+            "type": "image/tiff; application=geotiff",
+            "title": "Detail magnitude (output minus bicubic interpolation of the input)",
+            "description": DETAIL_DEFINITION,
+            "roles": ["metadata", "detail-map"],
+        }
+        for key, value in self.stats.summary().items():
+            item["properties"][f"geosr:detail_{key}"] = value if np.isfinite(value) else None
+        return item
 
 
 def _warn_residuals(residuals):
@@ -430,20 +528,25 @@ def _write_outputs(plan, output, dests, opts, run=None, sources=()):
     """
     from ..raster.writing import copy_to_cog
 
-    dst_path, stac_dst = dests
-    remove_stale_temps(dst_path)
-    if stac_dst is not None:
-        remove_stale_temps(stac_dst)
+    dst_path, stac_dst, detail_dst = dests
+    for path in (dst_path, stac_dst, detail_dst):
+        if path is not None:
+            remove_stale_temps(path)
     with TempFiles() as temps:
         tmp = temps.scratch(dst_path, ".tif") if opts.cog else temps.new(dst_path, ".tif")
-        residuals = _run_blocks(plan, output, tmp, opts, run)
+        detail = _DetailMap(detail_dst, temps.new(detail_dst, ".tif")) if detail_dst is not None else None
+        residuals = _run_blocks(plan, output, tmp, opts, run, detail)
         if opts.cog:
             final = temps.new(dst_path, ".tif")
             log.info("writing the Cloud Optimized GeoTIFF")
             copy_to_cog(tmp, final, output.cog_options)
             temps.discard(tmp)
         if stac_dst is not None:
-            _write_sidecar(temps, stac_dst, lambda: _stac_item(plan, output, dst_path, opts.cog, sources))
+            def make_item():
+                item = _stac_item(plan, output, dst_path, opts.cog, sources)
+                return item if detail is None else detail.add_to_stac(item, dst_path)
+
+            _write_sidecar(temps, stac_dst, make_item)
         temps.commit()
     return residuals
 
@@ -508,6 +611,7 @@ def _plan_guided(src, dst, model, bands, guide, guide_bands, opts):
     else:
         where = {"degradation": "bicubic", "sigma": None, **(opts.training or {})}
     bp = guided_block_plan(single.block_plan, where["degradation"], where["sigma"])
+    bp = dataclasses.replace(bp, detail=opts.detail_map is not None)
     check_chunk_size(opts.chunk_size, bp.halo)
     reads = [info.path, *spec.paths] + ([os.fspath(model)] if isinstance(model, (str, os.PathLike)) else [])
     dests = _check_destinations(info, dst, len(split.selected), spec.scale, dtype, opts, reads)
@@ -571,6 +675,7 @@ def magnify_raster(
     progress: ProgressCallback | None = None,
     guide: str | os.PathLike[str] | Sequence[str | os.PathLike[str]] | None = None,
     guide_bands: Sequence[int] | str | None = None,
+    detail_map: str | os.PathLike[str] | None = None,
 ) -> MagnifyResult:
     """Magnify a georeferenced raster and write it as a GeoTIFF (or COG).
 
@@ -655,6 +760,14 @@ def magnify_raster(
         the tags count those pixels.
     guide_bands : sequence of int or str, optional
         1-based bands over the guide files stacked in order (all by default).
+    detail_map : str or os.PathLike, optional
+        Also write a float32 GeoTIFF on the output grid holding, per pixel,
+        the RMS over the magnified bands of the output minus the bicubic
+        interpolation of the input (NaN where the output is invalid), with
+        the output's provenance tags. Its mean, 95th percentile and maximum
+        go into the output's tags (``GEOSR_DETAIL_MEAN``, ``_P95``,
+        ``_MAX``) and the STAC sidecar (asset ``detail``). Must be none of
+        the files the run reads or writes; ``overwrite`` applies to it too.
 
     Returns
     -------
@@ -680,6 +793,7 @@ def magnify_raster(
         training=training, retries=retries, overwrite=overwrite, cog=cog, consistency=consistency,
         ensemble=ensemble, spectral_guard=spectral_guard, stac=stac, self_train=self_train,
         check_free_space=check_free_space, progress=progress, guided=guide is not None,
+        detail_map=detail_map,
     )
     if guide is not None:
         return _magnify_guided(src, dst, model, bands, guide, guide_bands, opts, started)
