@@ -6,7 +6,9 @@ Agg canvas, so no matplotlib backend is selected or changed.
 
 from __future__ import annotations
 
+import base64
 import contextlib
+import html
 import json
 import math
 import os
@@ -19,8 +21,10 @@ import numpy as np
 
 from ..cautions import SCORES_CAUTION
 from ..errors import DestinationError
+from ..raster.blocks import detail_magnitude
 
-__all__ = ["GUIDE_CAUTION", "HIGHER_IS_BETTER", "METHODS", "prepare_destination", "write_guided_report", "write_report"]
+__all__ = ["COLUMNS", "GUIDE_CAUTION", "HIGHER_IS_BETTER", "METHODS", "prepare_destination", "write_guided_report",
+           "write_html", "write_report"]
 
 #: Methods compared, in report order.
 METHODS = ("geosr", "bicubic", "lanczos", "nearest")
@@ -34,6 +38,17 @@ HIGHER_IS_BETTER = {
     "q": True,
     "consistency_rms": False,
     "consistency_max": False,
+}
+
+#: Column headers of the metric tables (report.md and report.html).
+COLUMNS = {
+    "psnr": "PSNR (dB)",
+    "ssim": "SSIM",
+    "ergas": "ERGAS",
+    "sam": "SAM (°)",
+    "q": "Q",
+    "consistency_rms": "consistency RMS",
+    "consistency_max": "consistency max",
 }
 
 
@@ -82,7 +97,7 @@ def _fmt(value):
 
 def _table(rows_by_method, title):
     keys = list(HIGHER_IS_BETTER)
-    lines = [f"**{title}**", "", "| method | " + " | ".join(keys) + " |",
+    lines = [f"**{title}**", "", "| method | " + " | ".join(COLUMNS[k] for k in keys) + " |",
              "|---" * (len(keys) + 1) + "|"]
     best = {}
     for k in keys:
@@ -149,11 +164,11 @@ def _write_figures(folder, ref, outputs, valid, window, band_names):
     crop = (slice(None), slice(r, r + size), slice(c, c + size))
     vals = ref[crop][:, valid[r : r + size, c : c + size]]
     lo, hi = (np.percentile(vals, [2, 98]) if vals.size else (ref.min(), ref.max()))
-    fig = _figure(figsize=(12, 4.4))
-    for i, (title, img) in enumerate(
-        [("reference", ref), ("GDAL bicubic", outputs["bicubic"]), ("geosr", outputs["geosr"])]
-    ):
-        ax = fig.add_subplot(1, 3, i + 1)
+    fig = _figure(figsize=(16, 4.4))
+    panels = [("reference", ref), ("low-res input", outputs["nearest"]),
+              ("GDAL bicubic", outputs["bicubic"]), ("geosr", outputs["geosr"])]
+    for i, (title, img) in enumerate(panels):
+        ax = fig.add_subplot(1, len(panels), i + 1)
         shown, cmap = _display(np.nan_to_num(img[crop]), lo, hi)
         ax.imshow(shown, cmap=cmap, interpolation="nearest")
         ax.set_title(title)
@@ -163,7 +178,8 @@ def _write_figures(folder, ref, outputs, valid, window, band_names):
     names.append("crop_comparison.png")
     fig.savefig(os.path.join(folder, names[-1]), dpi=100)
 
-    return names + _write_error_maps(folder, ref, outputs, valid, METHODS)
+    return (names + _write_error_maps(folder, ref, outputs, valid, METHODS)
+            + _write_detail_figure(folder, outputs, valid, ("geosr",)))
 
 
 def _write_error_maps(folder, ref, outputs, valid, methods):
@@ -184,6 +200,23 @@ def _write_error_maps(folder, ref, outputs, valid, methods):
     return names
 
 
+def _write_detail_figure(folder, outputs, valid, methods):
+    """The detail each method adds to the bicubic interpolation of the low-res input, one colour scale."""
+    maps = {m: detail_magnitude(outputs[m], outputs["bicubic"], valid) for m in methods}
+    vmax = max(float(np.percentile(d[valid], 99)) if valid.any() else 0.0 for d in maps.values()) or 1.0
+    fig = _figure(figsize=(6 * len(methods), 6))
+    for i, (m, d) in enumerate(maps.items()):
+        ax = fig.add_subplot(1, len(methods), i + 1)
+        im = ax.imshow(np.ma.masked_array(d, ~valid), cmap="viridis", vmin=0, vmax=vmax,
+                       interpolation="nearest")
+        fig.colorbar(im, ax=ax, shrink=0.8, label="detail magnitude (RMS over bands)")
+        ax.set_title(f"|{m} - bicubic of the low-res input|")
+        ax.set_axis_off()
+    fig.suptitle("Where the detail was added (output minus GDAL bicubic of the low-res input)")
+    fig.savefig(os.path.join(folder, "detail_map.png"), dpi=100)
+    return ["detail_map.png"]
+
+
 def _write_gain_chart(folder, result, band_names, method="geosr"):
     gain = [g["psnr"] - b["psnr"] for g, b in zip(result[method]["bands"], result["bicubic"]["bands"])]
     fig = _figure(figsize=(max(4, 1 + 0.8 * len(gain)), 4))
@@ -196,6 +229,120 @@ def _write_gain_chart(folder, result, band_names, method="geosr"):
     fig.tight_layout()
     fig.savefig(os.path.join(folder, "psnr_gain.png"), dpi=100)
     return ["psnr_gain.png"]
+
+
+#: Captions of the figures in report.html.
+_CAPTIONS = {
+    "crop_comparison.png": "The most textured window: the reference, the low-resolution input "
+                           "(each pixel drawn as a block), the interpolations and the magnified outputs.",
+    "detail_map.png": "Detail magnitude: per pixel, the RMS over bands of the output minus GDAL's "
+                      "bicubic interpolation of the low-resolution input. Bright means detail was added "
+                      "there (synthesized by the single-image model, taken from the guide by the guided one).",
+    "psnr_gain.png": "PSNR gain over GDAL's bicubic interpolation, per band.",
+}
+
+_STYLE = (
+    "body{font-family:sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;line-height:1.45;color:#222}"
+    "table{border-collapse:collapse;margin:.5em 0 1.5em}th,td{border:1px solid #bbb;padding:.25em .6em;"
+    "text-align:right}th:first-child,td:first-child{text-align:left}th{background:#eee}"
+    "blockquote{border-left:4px solid #c60;margin:1em 0;padding:.2em 1em;background:#fff6ee}"
+    "figure{margin:1.5em 0}figure img{max-width:100%;height:auto}figcaption{font-size:.9em;color:#444}"
+    "code{background:#f3f3f3;padding:0 .2em}"
+)
+
+
+def _inline(text):
+    """Escaped text with the report's inline markup: **bold** and `code`."""
+    out = html.escape(text, quote=False)
+    parts = out.split("`")
+    out = "".join(f"<code>{p}</code>" if i % 2 else p for i, p in enumerate(parts))
+    parts = out.split("**")
+    return "".join(f"<strong>{p}</strong>" if i % 2 else p for i, p in enumerate(parts))
+
+
+def _html_table(rows):
+    """A table from markdown rows (``| a | b |``; the second, the separator, is skipped)."""
+    cells = [[c.strip() for c in r.strip().strip("|").split("|")] for r in rows]
+    head = "".join(f'<th scope="col">{_inline(c)}</th>' for c in cells[0])
+    body = "".join("<tr>" + "".join(f"<td>{_inline(c)}</td>" for c in row) + "</tr>" for row in cells[2:])
+    return [f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"]
+
+
+def _html_figure(folder, name):
+    """A PNG of the report folder as an embedded data URI, with its caption."""
+    with open(os.path.join(folder, name), "rb") as fh:
+        data = base64.b64encode(fh.read()).decode("ascii")
+    caption = _CAPTIONS.get(name) or (
+        f"Absolute error of {name[6:-4]} against the reference (band mean)." if name.startswith("error_") else name)
+    return [f'<figure><img src="data:image/png;base64,{data}" alt="{html.escape(caption)}">'
+            f"<figcaption>{html.escape(caption)} <code>{html.escape(name)}</code></figcaption></figure>"]
+
+
+def _html_body(folder, lines):
+    """The report's markdown (the subset report.md uses) as HTML; listed PNGs are embedded."""
+    out, table, para = [], [], []
+
+    def flush():
+        if table:
+            out.extend(_html_table(table))
+            table.clear()
+        if para:
+            out.append(f"<p>{_inline(' '.join(para))}</p>")
+            para.clear()
+
+    for line in lines:
+        text = line.strip()
+        if text.startswith("|"):
+            if para:
+                flush()
+            table.append(text)
+            continue
+        flush()
+        name = text[3:-1] if text.startswith("- `") and text.endswith(".png`") else None
+        if name and os.path.isfile(os.path.join(folder, name)):
+            out.extend(_html_figure(folder, name))
+        elif text.startswith("## "):
+            out.append(f"<h2>{_inline(text[3:])}</h2>")
+        elif text.startswith("# "):
+            out.append(f"<h1>{_inline(text[2:])}</h1>")
+        elif text.startswith("**") and text.endswith("**") and text.count("**") == 2:
+            out.append(f"<h3>{_inline(text[2:-2])}</h3>")
+        elif text.startswith("> "):
+            out.append(f"<blockquote><p>{_inline(text[2:])}</p></blockquote>")
+        elif text:
+            para.append(text)
+    flush()
+    return out
+
+
+def write_html(folder: str) -> str:
+    """Write ``report.html`` beside ``report.md``: one self-contained page.
+
+    The page holds the text and tables of report.md and every figure it
+    lists as an embedded PNG (``data:`` URI); it fetches nothing and needs
+    no JavaScript.
+
+    Parameters
+    ----------
+    folder : str
+        A report folder holding report.md and its figures.
+
+    Returns
+    -------
+    str
+        The path of report.html.
+    """
+    with open(os.path.join(folder, "report.md"), encoding="utf-8") as fh:
+        lines = fh.read().splitlines()
+    title = next((ln[2:].strip() for ln in lines if ln.startswith("# ")), "geosr assessment")
+    page = ["<!DOCTYPE html>", '<html lang="en">', "<head>", '<meta charset="utf-8">',
+            '<meta name="viewport" content="width=device-width, initial-scale=1">',
+            f"<title>{html.escape(title)}</title>", f"<style>{_STYLE}</style>", "</head>", "<body>"]
+    page += _html_body(folder, lines) + ["</body>", "</html>", ""]
+    path = os.path.join(folder, "report.html")
+    with open(path, "w", encoding="utf-8") as fh:
+        fh.write("\n".join(page))
+    return path
 
 
 def prepare_destination(report_dir, overwrite):
@@ -269,6 +416,7 @@ def _write_all(report_dir, result, ref, valid, crop_size, figures, markdown):
         with open(os.path.join(tmp, "metrics.json"), "w", encoding="utf-8") as fh:
             json.dump(result, fh, indent=2, allow_nan=True)
         markdown(os.path.join(tmp, "report.md"), names)
+        write_html(tmp)
         _publish(tmp, report_dir)
     except BaseException:
         with contextlib.suppress(OSError):
@@ -363,10 +511,11 @@ def _write_guided_crops(folder, ref, outputs, valid, window, guide):
     g = guide[r : r + size, c : c + size]
     g_lo, g_hi = np.percentile(g, [2, 98])
     panels = [("reference", ref[crop], lo, hi), ("guide", g[None], g_lo, g_hi),
+              ("low-res input", outputs["nearest"][crop], lo, hi),
               ("GDAL bicubic", outputs["bicubic"][crop], lo, hi),
               ("geosr (single image)", outputs["geosr"][crop], lo, hi),
               ("guided", outputs["guided"][crop], lo, hi)]
-    fig = _figure(figsize=(20, 4.6))
+    fig = _figure(figsize=(24, 4.6))
     for i, (title, img, a, b) in enumerate(panels):
         ax = fig.add_subplot(1, len(panels), i + 1)
         shown, cmap = _display(np.nan_to_num(img), a, b)
@@ -399,6 +548,7 @@ def write_guided_report(
     def figures(tmp, window):
         return (_write_guided_crops(tmp, ref, outputs, valid, window, guide)
                 + _write_error_maps(tmp, ref, outputs, valid, result["methods"])
+                + _write_detail_figure(tmp, outputs, valid, ("geosr", "guided"))
                 + _write_gain_chart(tmp, result, band_names, "guided"))
 
     _write_all(report_dir, result, ref, valid, crop_size, figures,
