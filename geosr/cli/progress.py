@@ -5,9 +5,12 @@ and its steps through :mod:`logging`; this module renders both on stderr.
 :class:`ProgressBars` is such a callback: it draws a :class:`Progress` bar
 (blocks done / total, rate and time left) from the main process as each
 block's result arrives, so it works the same with local threads or
-processes and with a dask.distributed cluster. On a terminal a bar redraws
-one line; when stderr is redirected to a file it writes a line at every
-tenth of the work (and at least every 30 seconds), so logs stay short.
+processes and with a dask.distributed cluster. On a terminal a bar drawn by
+tqdm redraws one line in place (tqdm rather than rich: measured with
+``python -X importtime``, it adds about 4 ms to a run against rich's 27 to
+58 ms); when stderr is not a terminal (a file, a pipe) it writes a plain
+line at every tenth of the work (and at least every 30 seconds), so logs
+stay short.
 :func:`library_output` prints the library's log records as
 ``<step>: <message>`` lines (``train: fitting the model ...``).
 """
@@ -15,7 +18,9 @@ tenth of the work (and at least every 30 seconds), so logs stay short.
 from __future__ import annotations
 
 import contextlib
+import io
 import logging
+import os
 import sys
 import time
 from collections.abc import Iterator
@@ -54,6 +59,14 @@ def format_duration(seconds):
         return f"{minutes} min {sec:02d} s"
     hours, minutes = divmod(minutes, 60)
     return f"{hours} h {minutes:02d} min"
+
+
+def _columns(stream):
+    """Width of the terminal behind ``stream`` in columns (0 when unknown)."""
+    try:
+        return os.get_terminal_size(stream.fileno()).columns
+    except (AttributeError, ValueError, OSError, io.UnsupportedOperation):
+        return 0
 
 
 class Progress:
@@ -96,6 +109,7 @@ class Progress:
         self._last_draw = 0.0
         self._last_tenth = -1
         self._closed = False
+        self._tqdm = None
         isatty = getattr(self.stream, "isatty", None)
         try:
             self._tty = bool(isatty()) if isatty else False
@@ -125,14 +139,34 @@ class Progress:
         except (ValueError, OSError):  # a closed or broken stream must not fail the run
             self.quiet = True
 
+    def _terminal_bar(self):
+        """The tqdm bar of a terminal, made on first use (it draws itself at once)."""
+        if self._tqdm is None:
+            from tqdm import tqdm
+
+            # A terminal that reports no size (0 x 0) would hide the bar: 80 x 20 then.
+            sized = _columns(self.stream) > 0
+            self._tqdm = tqdm(total=self.total, desc=self.label, unit=f" {self.unit}", file=self.stream,
+                              mininterval=self.min_interval, dynamic_ncols=sized,
+                              ncols=None if sized else 80, nrows=None if sized else 20, leave=True)
+        return self._tqdm
+
+    def _draw_terminal(self, step=0, close=False):
+        try:
+            bar = self._terminal_bar()
+            if step:
+                bar.update(step)
+            if close:
+                bar.close()
+        except (ValueError, OSError):  # a closed or broken stream must not fail the run
+            self.quiet = True
+
     def _draw(self, force=False):
         if self.quiet:
             return
         now = time.monotonic()
         if self._tty:
-            if force or now - self._last_draw >= self.min_interval:
-                self._write("\r" + self.text(now) + "\x1b[K", "")
-                self._last_draw = now
+            self._draw_terminal()
             return
         tenth = (10 * self.done) // self.total if self.total else 10
         if force or tenth > self._last_tenth or now - self._last_draw >= 30.0:
@@ -143,9 +177,13 @@ class Progress:
     # -------------------------------------------------------------- update
     def update(self, n=1):
         """Record ``n`` more finished units and redraw when due."""
+        before = self.done
         self.done = min(self.total, self.done + int(n)) if self.total else self.done + int(n)
-        final = self.done >= self.total
-        self._draw(force=final and self._tty)
+        if self._tty:
+            if not self.quiet:
+                self._draw_terminal(self.done - before)
+            return
+        self._draw()
 
     def close(self):
         """Finish the line (on a terminal) and stop drawing."""
@@ -155,7 +193,7 @@ class Progress:
         if self.quiet:
             return
         if self._tty:
-            self._write("\r" + self.text() + "\x1b[K", "\n")
+            self._draw_terminal(close=True)
         elif self._last_tenth < 10 or self.done < self.total:
             self._write(self.text(), "\n")
 
