@@ -75,12 +75,18 @@ def format_card(card, width=78):
         if not common:
             method_rows(entry, 4)
         training = entry["training"]
+        for ref in training.get("references") or ():
+            bands = ", ".join(map(str, ref.get("bands") or ()))
+            row("training image", f"{ref.get('name')}, bands {bands}", 4)
+            row("  its sha256", ref.get("sha256") or "unknown", 4, wrap=False)
         if "n_images" in training:
             row("training images", training["n_images"], 4)
+        if "n_windows" in training:
+            row("training windows", training["n_windows"], 4)
         if "n_samples" in training:
             row("training samples", training["n_samples"], 4)
         for key, value in training.items():
-            if key not in ("n_images", "n_samples"):
+            if key not in ("n_images", "n_windows", "n_samples", "references"):
                 row(key.replace("_", " "), "none" if value is None else value, 4)
         row("sha256", entry.get("sha256") or "unknown", 4, wrap=False)
     lines.append("")

@@ -144,6 +144,39 @@ def _fit(models, pooled, names, max_samples):
         model.band_name_ = name
 
 
+def _checksums(infos):
+    """sha256 of each reference file's bytes (None for a non-local path)."""
+    from ..raster.guide import sha256_file
+
+    shas = []
+    for info in infos:
+        try:
+            shas.append(sha256_file(info.path))
+        except InputError:
+            raise InputError(f"The reference {info.name!r} must be readable to record its checksum") from None
+    return shas
+
+
+def _record_provenance(models, infos, selections):
+    """Name the references in each model's training provenance: file name, sha256, bands used.
+
+    A shared model learns from every selected band, a per-band model from
+    its band of each reference. The core counts the pooled samples as
+    ``n_images``; read window by window those are windows, not images, so
+    the count is kept as ``n_windows``.
+    """
+    shas = _checksums(infos)
+    for k, model in enumerate(models):
+        training = dict(getattr(model, "training_", {}) or {})
+        if "n_images" in training:
+            training["n_windows"] = training.pop("n_images")
+        training["references"] = [
+            {"name": info.name, "sha256": sha, "bands": [int(b) for b in (sel if len(models) == 1 else sel[k:k + 1])]}
+            for info, sha, sel in zip(infos, shas, selections)
+        ]
+        model.training_ = training
+
+
 def train_from_rasters(
     paths: str | os.PathLike[str] | Sequence[str | os.PathLike[str]],
     scale: int,
@@ -200,7 +233,9 @@ def train_from_rasters(
     -------
     list of CoupledDictionary
         One per band in band order, or one shared model. Each has a
-        ``band_name_`` attribute.
+        ``band_name_`` attribute; its ``training_`` provenance lists the
+        ``references`` (file name, sha256 of the file's bytes, bands used)
+        and counts the windows read (``n_windows``).
     """
     from ..core.model import CoupledDictionary
     from ..modelfile import save_models
@@ -226,6 +261,7 @@ def train_from_rasters(
     first = infos[0]
     names = ["shared"] if shared else [first.descriptions[b - 1] or f"band{b}" for b in selections[0]]
     _fit(models, pooled, names, max_samples)
+    _record_provenance(models, infos, selections)
     if output is not None:
         save_models(output, models, band_names=names)
     return models
