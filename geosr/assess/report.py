@@ -150,6 +150,37 @@ def _write_markdown(path, result, band_names, figures):
         fh.write("\n".join(lines))
 
 
+def _crop_range(ref, valid, window):
+    """The crop's index and the display range (2nd and 98th percentiles of its valid reference pixels)."""
+    r, c, size = window
+    crop = (slice(None), slice(r, r + size), slice(c, c + size))
+    vals = ref[crop][:, valid[r : r + size, c : c + size]]
+    lo, hi = (np.percentile(vals, [2, 98]) if vals.size else (ref.min(), ref.max()))
+    return crop, lo, hi
+
+
+def _slider_pair(ref, outputs, valid, window, before, after):
+    """PNG bytes of two methods' crops on one display range, for the before/after slider.
+
+    ``before`` and ``after`` are ``(label, key of outputs)``; returns
+    ``[(label, png bytes), (label, png bytes)]``.
+    """
+    import io
+
+    from matplotlib.image import imsave
+
+    crop, lo, hi = _crop_range(ref, valid, window)
+    zoom = max(1, 384 // window[2])
+    pair = []
+    for label, key in (before, after):
+        shown, cmap = _display(np.nan_to_num(outputs[key][crop]), lo, hi)
+        shown = np.repeat(np.repeat(shown, zoom, axis=0), zoom, axis=1)
+        buf = io.BytesIO()
+        imsave(buf, shown, cmap=cmap, vmin=0, vmax=1, format="png")
+        pair.append((label, buf.getvalue()))
+    return pair
+
+
 def _display(stack, lo, hi):
     """(bands, r, c) -> image for imshow: RGB from the first three bands or grey."""
     scaled = np.clip((stack - lo) / (hi - lo if hi > lo else 1.0), 0, 1)
@@ -161,9 +192,7 @@ def _display(stack, lo, hi):
 def _write_figures(folder, ref, outputs, valid, window, band_names):
     names = []
     r, c, size = window
-    crop = (slice(None), slice(r, r + size), slice(c, c + size))
-    vals = ref[crop][:, valid[r : r + size, c : c + size]]
-    lo, hi = (np.percentile(vals, [2, 98]) if vals.size else (ref.min(), ref.max()))
+    crop, lo, hi = _crop_range(ref, valid, window)
     fig = _figure(figsize=(16, 4.4))
     panels = [("reference", ref), ("low-res input", outputs["nearest"]),
               ("GDAL bicubic", outputs["bicubic"]), ("geosr", outputs["geosr"])]
@@ -204,15 +233,15 @@ def _write_detail_figure(folder, outputs, valid, methods):
     """The detail each method adds to the bicubic interpolation of the low-res input, one colour scale."""
     maps = {m: detail_magnitude(outputs[m], outputs["bicubic"], valid) for m in methods}
     vmax = max(float(np.percentile(d[valid], 99)) if valid.any() else 0.0 for d in maps.values()) or 1.0
-    fig = _figure(figsize=(6 * len(methods), 6))
+    fig = _figure(figsize=(6.5 * len(methods), 6.5))
     for i, (m, d) in enumerate(maps.items()):
         ax = fig.add_subplot(1, len(methods), i + 1)
         im = ax.imshow(np.ma.masked_array(d, ~valid), cmap="viridis", vmin=0, vmax=vmax,
                        interpolation="nearest")
         fig.colorbar(im, ax=ax, shrink=0.8, label="detail magnitude (RMS over bands)")
-        ax.set_title(f"|{m} - bicubic of the low-res input|")
+        ax.set_title(m)
         ax.set_axis_off()
-    fig.suptitle("Where the detail was added (output minus GDAL bicubic of the low-res input)")
+    fig.suptitle("Where detail was added:\noutput minus GDAL bicubic of the low-res input")
     fig.savefig(os.path.join(folder, "detail_map.png"), dpi=100)
     return ["detail_map.png"]
 
@@ -237,7 +266,7 @@ _CAPTIONS = {
                            "(each pixel drawn as a block), the interpolations and the magnified outputs.",
     "detail_map.png": "Detail magnitude: per pixel, the RMS over bands of the output minus GDAL's "
                       "bicubic interpolation of the low-resolution input. Bright means detail was added "
-                      "there (synthesized by the single-image model, taken from the guide by the guided one).",
+                      "there: synthesized by single-image geosr, taken from the guide by a guided method.",
     "psnr_gain.png": "PSNR gain over GDAL's bicubic interpolation, per band.",
 }
 
@@ -248,7 +277,44 @@ _STYLE = (
     "blockquote{border-left:4px solid #c60;margin:1em 0;padding:.2em 1em;background:#fff6ee}"
     "figure{margin:1.5em 0}figure img{max-width:100%;height:auto}figcaption{font-size:.9em;color:#444}"
     "code{background:#f3f3f3;padding:0 .2em}"
+    ".compare{display:flex;flex-wrap:wrap;gap:1em}.compare figure{margin:0}"
+    ".compare img{width:384px;max-width:100%;image-rendering:pixelated}"
+    ".stage{position:relative;display:inline-block}.stage img{display:block}"
+    ".stage img.top{position:absolute;top:0;left:0}.compare input{width:384px;max-width:100%}"
 )
+
+#: Turns each ``.compare`` pair into one image with a slider (the page reads the same without it).
+_SLIDER_JS = """(function () {
+  document.querySelectorAll(".compare").forEach(function (box) {
+    var imgs = box.querySelectorAll("img");
+    if (imgs.length !== 2) { return; }
+    var before = imgs[0].cloneNode(), after = imgs[1].cloneNode();
+    var stage = document.createElement("div"), range = document.createElement("input");
+    var note = document.createElement("p");
+    stage.className = "stage"; after.className = "top";
+    stage.appendChild(before); stage.appendChild(after);
+    range.type = "range"; range.min = "0"; range.max = "100"; range.value = "50";
+    range.setAttribute("aria-label", before.alt + " left of the handle, " + after.alt + " right of it");
+    note.textContent = before.alt + " | " + after.alt + " (drag the slider)";
+    function show() { after.style.clipPath = "inset(0 0 0 " + range.value + "%)"; }
+    range.addEventListener("input", show); show();
+    box.textContent = ""; box.style.display = "block";
+    box.appendChild(stage); box.appendChild(range); box.appendChild(note);
+  });
+})();"""
+
+
+def _html_slider(pair):
+    """Two crops side by side (a before/after slider with JavaScript), embedded."""
+    figs = []
+    for label, png in pair:
+        data = base64.b64encode(png).decode("ascii")
+        figs.append(f'<figure><img src="data:image/png;base64,{data}" alt="{html.escape(label)}">'
+                    f"<figcaption>{html.escape(label)}</figcaption></figure>")
+    return ["<h3>Before and after</h3>",
+            f"<p>The most textured window, {html.escape(pair[0][0])} and {html.escape(pair[1][0])} "
+            "on the same display range.</p>",
+            f'<div class="compare">{"".join(figs)}</div>', f"<script>{_SLIDER_JS}</script>"]
 
 
 def _inline(text):
@@ -278,7 +344,7 @@ def _html_figure(folder, name):
             f"<figcaption>{html.escape(caption)} <code>{html.escape(name)}</code></figcaption></figure>"]
 
 
-def _html_body(folder, lines):
+def _html_body(folder, lines, slider=None):
     """The report's markdown (the subset report.md uses) as HTML; listed PNGs are embedded."""
     out, table, para = [], [], []
 
@@ -303,6 +369,8 @@ def _html_body(folder, lines):
             out.extend(_html_figure(folder, name))
         elif text.startswith("## "):
             out.append(f"<h2>{_inline(text[3:])}</h2>")
+            if text == "## Figures" and slider:
+                out.extend(_html_slider(slider))
         elif text.startswith("# "):
             out.append(f"<h1>{_inline(text[2:])}</h1>")
         elif text.startswith("**") and text.endswith("**") and text.count("**") == 2:
@@ -315,17 +383,21 @@ def _html_body(folder, lines):
     return out
 
 
-def write_html(folder: str) -> str:
+def write_html(folder: str, slider: Sequence[tuple[str, bytes]] | None = None) -> str:
     """Write ``report.html`` beside ``report.md``: one self-contained page.
 
     The page holds the text and tables of report.md and every figure it
-    lists as an embedded PNG (``data:`` URI); it fetches nothing and needs
-    no JavaScript.
+    lists as an embedded PNG (``data:`` URI); it fetches nothing and reads
+    the same without JavaScript.
 
     Parameters
     ----------
     folder : str
         A report folder holding report.md and its figures.
+    slider : sequence of two (label, PNG bytes), optional
+        Two crops shown side by side at the top of the figures; a few lines
+        of plain JavaScript turn them into one image with a before/after
+        slider.
 
     Returns
     -------
@@ -338,7 +410,7 @@ def write_html(folder: str) -> str:
     page = ["<!DOCTYPE html>", '<html lang="en">', "<head>", '<meta charset="utf-8">',
             '<meta name="viewport" content="width=device-width, initial-scale=1">',
             f"<title>{html.escape(title)}</title>", f"<style>{_STYLE}</style>", "</head>", "<body>"]
-    page += _html_body(folder, lines) + ["</body>", "</html>", ""]
+    page += _html_body(folder, lines, slider) + ["</body>", "</html>", ""]
     path = os.path.join(folder, "report.html")
     with open(path, "w", encoding="utf-8") as fh:
         fh.write("\n".join(page))
@@ -396,15 +468,20 @@ def write_report(
     ``result`` gains ``figures`` and ``protocol["figure_window"]``.
     """
     def figures(tmp, window):
+        slider[:] = _slider_pair(ref, outputs, valid, window, ("GDAL bicubic", "bicubic"), ("geosr", "geosr"))
         return (_write_figures(tmp, ref, outputs, valid, window, band_names)
                 + _write_gain_chart(tmp, result, band_names))
 
+    slider: list[tuple[str, bytes]] = []
     _write_all(report_dir, result, ref, valid, crop_size, figures,
-               lambda path, names: _write_markdown(path, result, band_names, names))
+               lambda path, names: _write_markdown(path, result, band_names, names), slider)
 
 
-def _write_all(report_dir, result, ref, valid, crop_size, figures, markdown):
-    """The figures (``figures(folder, window)``), metrics.json and report.md, atomically."""
+def _write_all(report_dir, result, ref, valid, crop_size, figures, markdown, slider=None):
+    """The figures (``figures(folder, window)``), metrics.json, report.md and report.html, atomically.
+
+    ``slider``: the before/after crops of report.html (filled by ``figures``).
+    """
     rows, cols = ref.shape[1:]
     size = int(min(crop_size, rows, cols))
     r0, c0 = _most_textured(ref, valid, size)
@@ -416,7 +493,7 @@ def _write_all(report_dir, result, ref, valid, crop_size, figures, markdown):
         with open(os.path.join(tmp, "metrics.json"), "w", encoding="utf-8") as fh:
             json.dump(result, fh, indent=2, allow_nan=True)
         markdown(os.path.join(tmp, "report.md"), names)
-        write_html(tmp)
+        write_html(tmp, slider)
         _publish(tmp, report_dir)
     except BaseException:
         with contextlib.suppress(OSError):
@@ -505,9 +582,7 @@ def _write_guided_markdown(path, result, band_names, figures):
 def _write_guided_crops(folder, ref, outputs, valid, window, guide):
     """Reference, guide, GDAL bicubic, single-image geosr and guided crops side by side."""
     r, c, size = window
-    crop = (slice(None), slice(r, r + size), slice(c, c + size))
-    vals = ref[crop][:, valid[r : r + size, c : c + size]]
-    lo, hi = (np.percentile(vals, [2, 98]) if vals.size else (ref.min(), ref.max()))
+    crop, lo, hi = _crop_range(ref, valid, window)
     g = guide[r : r + size, c : c + size]
     g_lo, g_hi = np.percentile(g, [2, 98])
     panels = [("reference", ref[crop], lo, hi), ("guide", g[None], g_lo, g_hi),
@@ -546,10 +621,12 @@ def write_guided_report(
     guide bands), for the crop figure.
     """
     def figures(tmp, window):
+        slider[:] = _slider_pair(ref, outputs, valid, window, ("GDAL bicubic", "bicubic"), ("guided", "guided"))
         return (_write_guided_crops(tmp, ref, outputs, valid, window, guide)
                 + _write_error_maps(tmp, ref, outputs, valid, result["methods"])
                 + _write_detail_figure(tmp, outputs, valid, ("geosr", "guided"))
                 + _write_gain_chart(tmp, result, band_names, "guided"))
 
+    slider: list[tuple[str, bytes]] = []
     _write_all(report_dir, result, ref, valid, crop_size, figures,
-               lambda path, names: _write_guided_markdown(path, result, band_names, names))
+               lambda path, names: _write_guided_markdown(path, result, band_names, names), slider)

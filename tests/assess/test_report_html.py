@@ -77,9 +77,13 @@ def _check_self_contained(page, folder):
     for ref in page.refs:
         assert not ref.lower().startswith(("http:", "https:", "//")), ref
     assert all("src" not in s for s in page.scripts)
-    # Every figure the report lists is embedded.
+    # Every figure the report lists is embedded, plus the two crops of the before/after pair.
     listed = json.loads((folder / "metrics.json").read_text())["figures"]
-    assert len(page.imgs) == len(listed)
+    assert len(page.imgs) == len(listed) + 2
+    alts = [img["alt"] for img in page.imgs]
+    assert "GDAL bicubic" in alts
+    # Without JavaScript the pair shows as two images; the script is inline (no src).
+    assert len(page.scripts) == 1
 
 
 @pytest.fixture(scope="module")
