@@ -347,6 +347,25 @@ def _protocol(ref, low, s, deg_name, sigma, data_range):
     }
 
 
+def _assess_guided(reference, report_dir, scale, kw):
+    """``assess_raster`` with a guide: the options that do not apply are refused."""
+    from .guided import assess_guided
+
+    for name in ("self_train", "consistency", "ensemble"):
+        if check_bool(kw[name], name):
+            raise ParameterError(f"The '{name}' parameter does not apply with 'guide', got True")
+    if kw["training"] is not None:
+        raise ParameterError("The 'training' parameter does not apply with 'guide', got one")
+    if kw["workers"] not in (None, 0, 1) or kw["scheduler"] is not None:
+        raise ParameterError("The 'workers' and 'scheduler' parameters must be unset for assess_raster")
+    method = None if kw["method"] is None else str(Method.parse(kw["method"], "method"))
+    return assess_guided(reference, report_dir, scale, guide=kw["guide"], guide_bands=kw["guide_bands"],
+                         model=kw["model"], method=method, degradation=kw["degradation"],
+                         sigma=kw["sigma"], bands=kw["bands"],
+                         spectral_guard=check_bool(kw["spectral_guard"], "spectral_guard"),
+                         crop_size=check_int(kw["crop_size"], "crop_size", 8), overwrite=kw["overwrite"])
+
+
 # --------------------------------------------------------------------------
 # The public function
 # --------------------------------------------------------------------------
@@ -360,7 +379,7 @@ def _model_file(model):
 def assess_raster(
     reference: str | os.PathLike[str],
     report_dir: str | os.PathLike[str],
-    scale: int,
+    scale: int | None,
     *,
     model: Any = None,
     self_train: bool = False,
@@ -377,6 +396,8 @@ def assess_raster(
     workers: int | None = None,
     scheduler: Any = None,
     overwrite: bool = False,
+    guide: Sequence[str | os.PathLike[str]] | str | os.PathLike[str] | None = None,
+    guide_bands: Sequence[int] | str | None = None,
 ) -> dict[str, Any]:
     """Assess magnification of a raster under Wald's protocol and write a report.
 
@@ -432,6 +453,16 @@ def assess_raster(
         memory in this process, so ``workers`` and ``scheduler`` must be unset.
     overwrite : bool
         Replace an existing non-empty report folder.
+    guide : path or sequence of paths, optional
+        Finer co-registered rasters (stacked): assess guided magnification
+        instead (:func:`geosr.assess.guided.assess_guided`). A guide ``s_g >= 2``
+        times finer than the reference is degraded onto its grid and ``scale``
+        defaults to (and must equal) ``s_g``; a guide on the reference's grid
+        needs ``scale``. The report adds the guided methods, QNR and the
+        guide's correlation per band. ``self_train``, ``consistency`` and
+        ``ensemble`` do not apply.
+    guide_bands : sequence of int or str, optional
+        1-based bands of the stacked guides; default every non-alpha band.
 
     Progress messages go to the ``geosr.assess.protocol`` logger (INFO).
 
@@ -452,6 +483,10 @@ def assess_raster(
     ------
     ParameterError, InputError, ModelError, DestinationError
     """
+    if guide is not None:
+        return _assess_guided(reference, report_dir, scale, locals())
+    if guide_bands is not None:
+        raise ParameterError("The 'guide_bands' parameter only applies with 'guide', got it without")
     s = check_scale(scale)
     deg_name, sigma_used = _check_degradation(s, degradation, sigma)
     if method is not None:

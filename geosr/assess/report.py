@@ -22,7 +22,7 @@ import numpy as np
 from ..cautions import SCORES_CAUTION
 from ..errors import DestinationError
 
-__all__ = ["HIGHER_IS_BETTER", "METHODS", "prepare_destination", "write_report"]
+__all__ = ["GUIDE_CAUTION", "HIGHER_IS_BETTER", "METHODS", "prepare_destination", "write_guided_report", "write_report"]
 
 #: Methods compared, in report order.
 METHODS = ("geosr", "bicubic", "lanczos", "nearest")
@@ -102,11 +102,10 @@ def _table(rows_by_method, title):
     return lines + [""]
 
 
-def _write_markdown(path, result, band_names, figures):
+def _protocol_lines(result):
+    """The reference, scale, degradation, crop and model sentences of report.md."""
     p = result["protocol"]
-    lines = [
-        "# geosr assessment under Wald's protocol",
-        "",
+    return [
         f"Reference: `{p['reference']}`; bands {', '.join(map(str, p['bands']))}; "
         f"scale x{p['scale']}; degradation {p['degradation']}"
         + (f" (sigma {p['sigma']:.4f} high-res pixels)" if p["sigma"] is not None else "")
@@ -117,6 +116,11 @@ def _write_markdown(path, result, band_names, figures):
         f"(method {result['model']['method']}, sha256 {result['model_sha256']}); spectral guard "
         f"{'on' if result['model']['spectral_guard'] else 'off'}.",
         "",
+    ]
+
+
+def _write_markdown(path, result, band_names, figures):
+    lines = ["# geosr assessment under Wald's protocol", ""] + _protocol_lines(result) + [
         "The reference was degraded by the scale, magnified back by each method and compared "
         "with the reference over valid pixels (Wald, Ranchin & Mangolini, PE&RS 1997). "
         "Bold marks the better value of each metric: higher PSNR, SSIM and Q; lower ERGAS, "
@@ -161,9 +165,15 @@ def _write_figures(folder, ref, outputs, valid, window, band_names):
     names.append("crop_comparison.png")
     fig.savefig(os.path.join(folder, names[-1]), dpi=100)
 
-    errs = {m: np.abs(np.nan_to_num(outputs[m]) - ref).mean(axis=0) for m in METHODS}
+    return names + _write_error_maps(folder, ref, outputs, valid, METHODS)
+
+
+def _write_error_maps(folder, ref, outputs, valid, methods):
+    """One map of the band-mean absolute error per method, on one colour scale."""
+    names = []
+    errs = {m: np.abs(np.nan_to_num(outputs[m]) - ref).mean(axis=0) for m in methods}
     vmax = max(float(np.percentile(e[valid], 99)) for e in errs.values()) or 1.0
-    for m in METHODS:
+    for m in methods:
         fig = _figure(figsize=(6, 6))
         ax = fig.add_subplot(1, 1, 1)
         im = ax.imshow(np.ma.masked_array(errs[m], ~valid), cmap="magma", vmin=0, vmax=vmax,
@@ -176,15 +186,15 @@ def _write_figures(folder, ref, outputs, valid, window, band_names):
     return names
 
 
-def _write_gain_chart(folder, result, band_names):
-    gain = [g["psnr"] - b["psnr"] for g, b in zip(result["geosr"]["bands"], result["bicubic"]["bands"])]
+def _write_gain_chart(folder, result, band_names, method="geosr"):
+    gain = [g["psnr"] - b["psnr"] for g, b in zip(result[method]["bands"], result["bicubic"]["bands"])]
     fig = _figure(figsize=(max(4, 1 + 0.8 * len(gain)), 4))
     ax = fig.add_subplot(1, 1, 1)
     ax.bar([str(n) for n in band_names], gain, color=["tab:green" if g >= 0 else "tab:red" for g in gain])
     ax.axhline(0, color="black", linewidth=0.8)
     ax.set_xlabel("band")
     ax.set_ylabel("PSNR gain over GDAL bicubic (dB)")
-    ax.set_title("geosr - bicubic, per band")
+    ax.set_title(f"{method} - bicubic, per band")
     fig.tight_layout()
     fig.savefig(os.path.join(folder, "psnr_gain.png"), dpi=100)
     return ["psnr_gain.png"]
@@ -208,7 +218,7 @@ def _report_files(folder):
     except (OSError, ValueError):
         return None
     if not (isinstance(data, dict) and isinstance(data.get("geosr_version"), str)
-            and isinstance(data.get("protocol"), dict) and isinstance(data.get("geosr"), dict)):
+            and isinstance(data.get("protocol"), dict)):
         return None
     figures = data.get("figures", [])
     if not isinstance(figures, list) or not all(
@@ -360,20 +370,158 @@ def write_report(
     refused (see :func:`_publish`).
     ``result`` gains ``figures`` and ``protocol["figure_window"]``.
     """
+    def figures(tmp, window):
+        return (_write_figures(tmp, ref, outputs, valid, window, band_names)
+                + _write_gain_chart(tmp, result, band_names))
+
+    _write_all(report_dir, result, ref, valid, crop_size, figures,
+               lambda path, names: _write_markdown(path, result, band_names, names), overwrite)
+
+
+def _write_all(report_dir, result, ref, valid, crop_size, figures, markdown, overwrite=True):
+    """The figures (``figures(folder, window)``), metrics.json and report.md, atomically."""
     rows, cols = ref.shape[1:]
     size = int(min(crop_size, rows, cols))
     r0, c0 = _most_textured(ref, valid, size)
     tmp = tempfile.mkdtemp(prefix=".geosr-report-", dir=os.path.dirname(report_dir))
     try:
-        figures = _write_figures(tmp, ref, outputs, valid, (r0, c0, size), band_names)
-        figures += _write_gain_chart(tmp, result, band_names)
-        result["figures"] = figures
+        names = figures(tmp, (r0, c0, size))
+        result["figures"] = names
         result["protocol"]["figure_window"] = {"row_off": r0, "col_off": c0, "size": size}
         with open(os.path.join(tmp, "metrics.json"), "w", encoding="utf-8") as fh:
             json.dump(result, fh, indent=2, allow_nan=True)
-        _write_markdown(os.path.join(tmp, "report.md"), result, band_names, figures)
+        markdown(os.path.join(tmp, "report.md"), names)
         _publish(tmp, report_dir, overwrite)
     except BaseException:
         with contextlib.suppress(OSError):
             shutil.rmtree(tmp)
         raise
+
+
+# --------------------------------------------------------------------------
+# Guided assessment
+# --------------------------------------------------------------------------
+
+#: The cautions of a guided report.
+GUIDE_CAUTION = (
+    "Guided detail is measured in the guide, not in the band itself: the guide must be "
+    "co-registered with the reference and acquired at nearly the same time (moved or changed "
+    "ground puts wrong detail in place), and detail taken from a band of another spectral "
+    "response can be wrong for a band that does not correlate with it."
+)
+
+#: Report labels of the methods that need one.
+_LABELS = {"geosr": "geosr (single image)", "bicubic": "bicubic (GDAL)",
+           "interpolation": "bicubic (geosr)", "lanczos": "lanczos (GDAL)",
+           "highpass": "highpass (GLP/HPF)", "substitution": "substitution (GSA)",
+           "guided": "guided (geosr)"}
+
+
+def _guide_lines(result, band_names):
+    g = result["guide"]
+    lines = [
+        f"Guide: {', '.join(f'`{f}`' for f in g['files'])}; bands {', '.join(map(str, g['bands']))}; "
+        + ("on the reference's grid, used as read" if g["scale_ratio"] == 1 else
+           f"{g['scale_ratio']} times finer than the reference, brought onto its grid: "
+           f"{g['on_reference_grid']}")
+        + (f"; resampled onto the grid (cubic): {', '.join(g['resampled'])}" if g["resampled"] else "")
+        + f". The guided output is plain bicubic interpolation at {100 * g['fallback_share']:.1f}% of "
+        "the compared pixels, where the guide's footprint is not wholly valid"
+        + ("" if not g["footprint_psnr"] else "; PSNR over the other pixels: " + ", ".join(
+            f"{_LABELS.get(m, m)} {v:.2f} dB" for m, v in g["footprint_psnr"].items()))
+        + ".",
+        "",
+        "| band | correlation with the guide |", "|---|---|",
+    ]
+    lines += [f"| {n} | {c:.4f} |" for n, c in zip(band_names, g["correlation"])] + [""]
+    lines += [f"> **Warning.** Band {n} correlates with the guide at {c:.2f}, below "
+              f"{g['weak_correlation_below']}: its guided detail may be wrong."
+              for n, c in zip(band_names, g["correlation"]) if not c >= g["weak_correlation_below"]]
+    return lines + [""]
+
+
+def _qnr_lines(nr):
+    lines = ["## No-reference quality", "",
+             f"{nr['name']}, at the guide's native resolution (x{nr['scale']}, Q in "
+             f"{nr['block']} x {nr['block']} windows): {nr['setup']} QNR = (1 - D_lambda)(1 - D_s); "
+             "1 is best, D_lambda and D_s 0 are best.", "",
+             "| method | QNR | D_lambda | D_s |", "|---|---|---|---|"]
+    for m, v in nr["methods"].items():
+        lines.append(f"| {_LABELS.get(m, m)} | {_fmt(v['qnr'])} | {_fmt(v['d_lambda'])} | {_fmt(v['d_s'])} |")
+    return lines + [""]
+
+
+def _write_guided_markdown(path, result, band_names, figures):
+    methods = result["methods"]
+    lines = ["# geosr assessment of guided magnification under Wald's protocol", ""]
+    lines += _protocol_lines(result) + _guide_lines(result, band_names) + [
+        "The reference was degraded by the scale and magnified back by each method, the guided "
+        "ones reading the guide on the reference's grid as their finer band; each result was "
+        "compared with the reference over valid pixels (Wald, Ranchin & Mangolini, PE&RS 1997). "
+        "highpass: high-pass injection with regression gains (Aiazzi et al., PE&RS 2006); "
+        "substitution: GSA (Aiazzi, Baronti & Selva, IEEE TGRS 2007); guided: geosr's guided "
+        "regression learned on the degraded reference. Bold marks the better value of each metric.",
+        "",
+        f"> **Caution.** {SCORES_CAUTION}",
+        "",
+        f"> **Caution.** {GUIDE_CAUTION}",
+        "",
+    ]
+    lines += _table({_LABELS.get(m, m): result[m]["overall"] for m in methods}, "Overall")
+    for b, name in enumerate(band_names):
+        lines += _table({_LABELS.get(m, m): result[m]["bands"][b] for m in methods}, f"Band {name}")
+    lines += _qnr_lines(result["no_reference"])
+    lines += ["## Figures", ""] + [f"- `{f}`" for f in figures] + [""]
+    with open(path, "w", encoding="utf-8") as fh:
+        fh.write("\n".join(lines))
+
+
+def _write_guided_crops(folder, ref, outputs, valid, window, guide):
+    """Reference, guide, GDAL bicubic, single-image geosr and guided crops side by side."""
+    r, c, size = window
+    crop = (slice(None), slice(r, r + size), slice(c, c + size))
+    vals = ref[crop][:, valid[r : r + size, c : c + size]]
+    lo, hi = (np.percentile(vals, [2, 98]) if vals.size else (ref.min(), ref.max()))
+    g = guide[r : r + size, c : c + size]
+    g_lo, g_hi = np.percentile(g, [2, 98])
+    panels = [("reference", ref[crop], lo, hi), ("guide", g[None], g_lo, g_hi),
+              ("GDAL bicubic", outputs["bicubic"][crop], lo, hi),
+              ("geosr (single image)", outputs["geosr"][crop], lo, hi),
+              ("guided", outputs["guided"][crop], lo, hi)]
+    fig = _figure(figsize=(20, 4.6))
+    for i, (title, img, a, b) in enumerate(panels):
+        ax = fig.add_subplot(1, len(panels), i + 1)
+        shown, cmap = _display(np.nan_to_num(img), a, b)
+        ax.imshow(shown, cmap=cmap, interpolation="nearest")
+        ax.set_title(title)
+        ax.set_axis_off()
+    fig.suptitle(f"Most textured {size} x {size} window at row {r}, col {c} "
+                 "(single-image detail is synthesized; guided detail comes from the guide)")
+    fig.savefig(os.path.join(folder, "crop_comparison.png"), dpi=100)
+    return ["crop_comparison.png"]
+
+
+def write_guided_report(
+    report_dir: str,
+    result: dict[str, Any],
+    ref: np.ndarray,
+    outputs: Mapping[str, np.ndarray],
+    valid: np.ndarray,
+    crop_size: int,
+    band_names: Sequence[str],
+    guide: np.ndarray,
+) -> None:
+    """Write the report of a guided assessment, as :func:`write_report` does.
+
+    ``result`` must hold ``methods`` (the report order), ``guide`` and
+    ``no_reference`` as :func:`geosr.assess.guided.assess_guided` makes them;
+    ``guide`` is the guide on the reference's grid, one band (the mean of the
+    guide bands), for the crop figure.
+    """
+    def figures(tmp, window):
+        return (_write_guided_crops(tmp, ref, outputs, valid, window, guide)
+                + _write_error_maps(tmp, ref, outputs, valid, result["methods"])
+                + _write_gain_chart(tmp, result, band_names, "guided"))
+
+    _write_all(report_dir, result, ref, valid, crop_size, figures,
+               lambda path, names: _write_guided_markdown(path, result, band_names, names))

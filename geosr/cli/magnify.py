@@ -112,8 +112,8 @@ def magnify(ctx, src, dst, model, self_train, train_atoms, train_samples, degrad
     from .progress import library_output, progress_bars
 
     with library_output(quiet), progress_bars("magnify", quiet) as bar, \
-            progress_bars("train: collect", quiet) as train_bar:
-        if self_train and train_bar is not None:
+            progress_bars("learn" if guides else "train: collect", quiet) as train_bar:
+        if (self_train or guides) and train_bar is not None:
             training["progress"] = train_bar
         result = magnify_raster(
             src,

@@ -823,7 +823,8 @@ class GuidedRegression(BaseEstimator):
         values : ndarray, shape (n_targets, scale*h, scale*w)
             float32 for float32 inputs, float64 otherwise.
         guide_ok : ndarray of bool, shape (scale*h, scale*w)
-            Pixels whose whole footprint had a valid guide.
+            Pixels where the guide is valid. Invalid guide pixels within an
+            output pixel's reach are first filled from valid neighbours.
         """
         self._check_fitted()
         s, model, sigma, *_ = self._geometry()
@@ -857,11 +858,14 @@ class GuidedRegression(BaseEstimator):
                 f"The model was fitted on {self.n_targets_} bands and {self.n_guides_} guide bands, "
                 f"got {x.shape[0]} and {g.shape[0]}"
             )
-        if gv is not None and not gv.all():
-            g = np.stack([fill_invalid(g[j], gv) for j in range(g.shape[0])])
         m, r = int(margin), _reach(s)
         trim = s * (r - UPSCALE_MARGIN) - _REACH
         ctx = s * r + dm  # fine context of the guide the low-pass reads
+        if gv is not None and not gv.all():
+            # Fill as far as one output pixel reads, so that pixels with a valid
+            # guide next to invalid ones read values interpolated from valid
+            # pixels only (local: the halo covers ctx twice).
+            g = np.stack([fill_invalid(g[j], gv, distance=ctx) for j in range(g.shape[0])])
         u = _crop(upscale_valid(_crop(x, m - r), s, UPSCALE_MARGIN), trim)
         gf = _crop(g, s * (m - r) - dm)
         out = np.empty((x.shape[0], u.shape[1] - 2 * _REACH, u.shape[2] - 2 * _REACH), u.dtype)
@@ -875,9 +879,7 @@ class GuidedRegression(BaseEstimator):
                            ks, u.dtype.type(self.intercept_[b]), out[b])
         ok = np.ones(out.shape[1:], dtype=bool)
         if gv is not None and not gv.all():
-            pb = ~_crop(gv, s * (m - r) - dm)
-            lb = _crop(_lowpass_bad(pb, s, n_taps, start, dm), trim)
-            ok = ~(_bad_box(lb, _REACH) | _bad_box(_crop(pb, ctx - _PR), _PR))
+            ok = _crop(gv, s * m).copy()  # the guide's own pixel is measured
         return out, ok
 
     def to_arrays(self) -> dict[str, np.ndarray]:
@@ -927,7 +929,7 @@ def sharpen_with_guide(coarse, guide, scale, *, coarse_valid=None, guide_valid=N
     Returns
     -------
     ndarray, shape (n, scale*h, scale*w) (or 2-D for a 2-D input)
-        Where the guide's footprint is not valid, plain bicubic interpolation.
+        Where the guide is not valid, plain bicubic interpolation.
     """
     if coarse_valid is not None and np.ndim(coarse) == 2:
         coarse_valid = np.asarray(coarse_valid)[None]

@@ -5,8 +5,10 @@ from __future__ import annotations
 __all__ = [
     "BANDS",
     "CODE",
+    "GUIDE_BAND",
     "LANDCOVER",
     "NODATA",
+    "PAN_WEIGHTS",
     "REFLECTANCE_SCALE",
     "SPECTRA",
     "VEGETATION",
@@ -16,6 +18,19 @@ __all__ = [
 
 #: Band names, in file order.
 BANDS = ("blue", "green", "red", "nir")
+
+#: Name of the panchromatic-like guide band.
+GUIDE_BAND = "pan"
+
+#: Weights of blue, green, red and NIR in the panchromatic-like guide band.
+#: Our own choice, not any sensor's response: a panchromatic detector spans
+#: the visible and the near-infrared (roughly 450-900 nm), so its reading
+#: follows every band without equalling any one. Its response is low in the
+#: blue (silicon detectors are least sensitive there and haze is usually
+#: filtered out), flat over the green and the red, and reaches into the NIR
+#: through the red edge, where vegetation is bright. They sum to 1, so the
+#: band is a reflectance like the others.
+PAN_WEIGHTS = (0.15, 0.30, 0.35, 0.20)
 
 #: Land-cover classes of the generator.
 LANDCOVER = (

@@ -22,7 +22,8 @@ __all__ = ["CAPTION", "detail_window", "quicklook_figure", "rmse", "write_quickl
 
 CAPTION = (
     "Demo scene: procedurally generated, no real place and no real data. "
-    "The geosr panel's fine detail is synthesized by a statistical model, not measured."
+    "The fine detail of both geosr panels is synthesized by a statistical model, not measured; "
+    "the guided panel's is estimated from a finer measured band by a model fitted to this scene."
 )
 
 #: Rows of the figure: label and the (red, green, blue) display bands.

@@ -5,13 +5,16 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage
 
-from .landcover import LANDCOVER, NODATA, REFLECTANCE_SCALE, SPECTRA, VEGETATION
+from .landcover import LANDCOVER, NODATA, PAN_WEIGHTS, REFLECTANCE_SCALE, SPECTRA, VEGETATION
 from .terrain import smooth_field
 
-__all__ = ["cast_shadows", "compose", "swath_edge"]
+__all__ = ["NOISE", "cast_shadows", "panchromatic", "record", "surface", "swath_edge"]
 
 #: Darkening of blue, green, red and NIR in shadow.
 _SHADOW = (0.55, 0.5, 0.45, 0.4)
+
+#: Standard deviation of the sensor noise, in reflectance.
+NOISE = 0.0012
 
 
 def cast_shadows(grid, layers, buildings, canopy_height, crowns):
@@ -25,12 +28,11 @@ def cast_shadows(grid, layers, buildings, canopy_height, crowns):
     return shadow
 
 
-def compose(rng, grid, layers, shading, shadow):
-    """The four bands as uint16 reflectance x 10,000 (1 at least: 0 is nodata).
+def surface(rng, grid, layers, shading, shadow):
+    """The reflectance reaching the sensor, float (4, rows, cols), blurred by the optics.
 
     Each class's spectrum, modulated by texture, hill shading (land only),
-    crop vigour (NIR of vegetation), sediment (water) and shadow, blurred by
-    the optics and with sensor noise added.
+    crop vigour (NIR of vegetation), sediment (water) and shadow.
     """
     lc = layers.landcover
     spectra = np.array([SPECTRA[c] for c in LANDCOVER])  # (classes, 4)
@@ -45,9 +47,23 @@ def compose(rng, grid, layers, shading, shadow):
     sediment = 1.0 + 0.12 * smooth_field(rng, grid.shape, 25 * grid.k) + 0.03 * smooth_field(rng, grid.shape, 1.5)
     refl[:, water] *= sediment[water][None]
     refl[:, shadow] *= np.array(_SHADOW)[:, None]
-    refl = ndimage.gaussian_filter(refl, sigma=(0, 0.55, 0.55), mode="reflect")  # optics
-    refl += rng.normal(0.0, 0.0012, refl.shape)  # sensor noise
-    return np.clip(np.rint(refl * REFLECTANCE_SCALE), 1, 65535).astype(np.uint16)
+    return ndimage.gaussian_filter(refl, sigma=(0, 0.55, 0.55), mode="reflect")  # optics
+
+
+def record(rng, refl):
+    """Add sensor noise to a reflectance array and store it as uint16 x 10,000 (1 at least: 0 is nodata)."""
+    noisy = refl + rng.normal(0.0, NOISE, refl.shape)
+    return np.clip(np.rint(noisy * REFLECTANCE_SCALE), 1, 65535).astype(np.uint16)
+
+
+def panchromatic(rng, refl):
+    """A panchromatic-like band, uint16 (rows, cols), from the noise-free reflectance (4, rows, cols).
+
+    The broad-band response is ``PAN_WEIGHTS`` applied to the four bands,
+    recorded with its own sensor noise (drawn from ``rng``).
+    """
+    broad = np.tensordot(np.asarray(PAN_WEIGHTS), refl, axes=1)
+    return record(rng, broad)
 
 
 def swath_edge(grid, data):

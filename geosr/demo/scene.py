@@ -9,12 +9,13 @@ field margins and tracks (:mod:`.fields`), wooded hills (:mod:`.trees`), the
 river with gravel bars and a reservoir behind a dam (:mod:`.water`), roads
 with a bridge (:mod:`.roads`), farmsteads (:mod:`.buildings`), hedges,
 orchards and riparian trees (:mod:`.trees`), then shadows, spectra, optics
-and noise (:mod:`.reflectance`) and a nodata wedge in one corner, like the
+and noise (:mod:`.reflectance`), a panchromatic-like band with its own
+noise (the guide, drawn last) and a nodata wedge in one corner, like the
 edge of a swath.
 
 Bands are blue, green, red and near-infrared surface reflectance scaled by
 10,000 (uint16, nodata 0), on a UTM grid (zone 33 north) at invented
-coordinates.
+coordinates; the guide is one more band on the same grid, stored alike.
 """
 
 from __future__ import annotations
@@ -25,10 +26,10 @@ import os
 import numpy as np
 from scipy import ndimage
 
-from ..errors import ParameterError
+from ..errors import InputError, ParameterError
 from . import buildings, fields, reflectance, roads, terrain, trees, water
 from .canvas import Grid, Layers
-from .landcover import BANDS, CODE, NODATA, REFLECTANCE_SCALE
+from .landcover import BANDS, CODE, GUIDE_BAND, NODATA, REFLECTANCE_SCALE
 
 __all__ = [
     "CRS",
@@ -39,6 +40,7 @@ __all__ = [
     "DemoScene",
     "degrade_scene",
     "fill_nodata",
+    "guide_scene",
     "make_scene",
     "read_scene",
     "write_scene",
@@ -70,6 +72,9 @@ class DemoScene:
         Ground sample distance in metres.
     landmarks : dict
         Named (row, col) positions, e.g. ``"bridge"``, ``"farm"``.
+    guide : ndarray, shape (rows, cols), uint16, or None
+        The panchromatic-like band measured on the same grid (reflectance
+        times 10,000, 0 is nodata); None for a degraded scene.
     """
 
     data: np.ndarray
@@ -79,6 +84,7 @@ class DemoScene:
     crs: str
     pixel: float
     landmarks: dict
+    guide: np.ndarray | None = None
 
     def mask_of(self, *names):
         """Boolean mask of valid pixels of the given land-cover classes."""
@@ -132,7 +138,11 @@ def make_scene(size: int = SIZE, seed: int | None = 0) -> DemoScene:
     Returns
     -------
     DemoScene
-        ``data`` of shape (4, size, size), uint16.
+        ``data`` of shape (4, size, size), uint16, and ``guide`` of shape
+        (size, size), uint16: the panchromatic-like band (see
+        :data:`~geosr.demo.landcover.PAN_WEIGHTS`) with its own sensor noise,
+        drawn after every other random choice so the four bands do not
+        depend on it.
     """
     from affine import Affine
 
@@ -140,10 +150,26 @@ def make_scene(size: int = SIZE, seed: int | None = 0) -> DemoScene:
     rng = np.random.default_rng(seed)
     grid = Grid.square(size, tuned_for=SIZE)
     layers, shading, shadow, landmarks = _paint_landscape(rng, grid)
-    data = reflectance.compose(rng, grid, layers, shading, shadow)
+    refl = reflectance.surface(rng, grid, layers, shading, shadow)
+    data = reflectance.record(rng, refl)
+    guide = reflectance.panchromatic(rng, refl)
     valid = reflectance.swath_edge(grid, data)
+    guide[~valid] = NODATA
     transform = Affine(PIXEL, 0.0, ORIGIN[0], 0.0, -PIXEL, ORIGIN[1])
-    return DemoScene(data, valid, layers.landcover, transform, CRS, PIXEL, landmarks)
+    return DemoScene(data, valid, layers.landcover, transform, CRS, PIXEL, landmarks, guide)
+
+
+def guide_scene(scene: DemoScene) -> DemoScene:
+    """The scene's guide band as a one-band scene on the same grid, for :func:`write_scene`.
+
+    Raises
+    ------
+    InputError
+        The scene has no guide (a degraded scene).
+    """
+    if scene.guide is None:
+        raise InputError("The scene must have a guide band (one made by make_scene), got None")
+    return dataclasses.replace(scene, data=scene.guide[None], guide=None)
 
 
 def degrade_scene(scene: DemoScene, scale: int = SCALE) -> DemoScene:
@@ -184,10 +210,15 @@ def fill_nodata(data: np.ndarray, valid: np.ndarray) -> np.ndarray:
 
 
 def write_scene(path: str | os.PathLike, scene: DemoScene, description: str | None = None) -> str:
-    """Write a scene as a tiled, compressed GeoTIFF (nodata 0, scales 1e-4)."""
+    """Write a scene as a tiled, compressed GeoTIFF (nodata 0, scales 1e-4).
+
+    Four bands are named blue, green, red and NIR; one band (a
+    :func:`guide_scene`) is named ``"pan"``.
+    """
     import rasterio
 
     count, rows, cols = scene.data.shape
+    names = (GUIDE_BAND,) if count == 1 else BANDS[:count]
     profile = {
         "driver": "GTiff",
         "width": cols,
@@ -205,7 +236,7 @@ def write_scene(path: str | os.PathLike, scene: DemoScene, description: str | No
     }
     with rasterio.open(path, "w", **profile) as dst:
         dst.write(scene.data)
-        dst.descriptions = BANDS[:count]
+        dst.descriptions = names
         dst.scales = (1.0 / REFLECTANCE_SCALE,) * count
         dst.offsets = (0.0,) * count
         dst.update_tags(
@@ -219,7 +250,7 @@ def write_scene(path: str | os.PathLike, scene: DemoScene, description: str | No
 
 
 def read_scene(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
-    """Read a 4-band demo raster back as (data uint16 (4, rows, cols), valid mask)."""
+    """Read a demo raster back as (data uint16 (bands, rows, cols), valid mask)."""
     import rasterio
 
     with rasterio.open(path) as src:

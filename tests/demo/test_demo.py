@@ -15,6 +15,7 @@ from pyproj import CRS
 
 from geosr import demo
 from geosr.cli.main import geosr as cli
+from geosr.demo.scene import fill_nodata
 from geosr.errors import ModelError, ParameterError
 
 
@@ -65,8 +66,10 @@ def test_same_seed_same_scene_other_seed_other_scene(small):
     again = demo.make_scene(192, seed=3)
     np.testing.assert_array_equal(small.data, again.data)
     np.testing.assert_array_equal(small.landcover, again.landcover)
+    np.testing.assert_array_equal(small.guide, again.guide)
     other = demo.make_scene(192, seed=4)
     assert not np.array_equal(small.data, other.data)
+    assert not np.array_equal(small.guide, other.guide)
 
 
 @pytest.mark.parametrize("bad", [0, 100, 193, 2.0, "768", True])
@@ -100,6 +103,53 @@ def test_reflectance_is_plausible(scene):
     assert refl.min() > 0.0 and refl.max() < 0.8
     water = scene.mask_of(*demo.WATER)
     assert np.median(scene.data[3][water]) / demo.REFLECTANCE_SCALE < 0.05
+
+
+# -------------------------------------------------------------- the guide
+def test_guide_is_a_noisy_broad_band_of_the_truth(scene):
+    """A panchromatic-like band: a weighted sum of the four bands plus its own sensor noise."""
+    from scipy.stats import pearsonr
+    from sklearn.linear_model import LinearRegression  # the reference least squares
+
+    from geosr.demo.reflectance import NOISE
+
+    guide, valid = scene.guide, scene.valid
+    assert guide.dtype == np.uint16 and guide.shape == scene.valid.shape
+    assert (guide[~valid] == demo.NODATA).all() and (guide[valid] > 0).all()
+    assert sum(demo.PAN_WEIGHTS) == pytest.approx(1.0) and min(demo.PAN_WEIGHTS) > 0
+    bands = scene.data[:, valid].T.astype(np.float64)
+    pan = guide[valid].astype(np.float64)
+    fit = LinearRegression().fit(bands, pan)
+    # the weights come back (the bands' own noise biases them by well under 0.01)
+    np.testing.assert_allclose(fit.coef_, demo.PAN_WEIGHTS, atol=0.01)
+    # what the bands leave unexplained is the noise of the guide and of the weighted
+    # bands, independent: sigma * sqrt(1 + sum w^2), in DN (measured 13.53 vs 13.55)
+    expected = NOISE * demo.REFLECTANCE_SCALE * np.sqrt(1 + np.sum(np.square(demo.PAN_WEIGHTS)))
+    assert np.std(pan - fit.predict(bands)) == pytest.approx(expected, rel=0.05)
+    # high multiple correlation with the truth bands, but not 1: the guide has its own
+    # noise (measured R = 0.99935 at seed 0)
+    r = np.sqrt(fit.score(bands, pan))
+    assert 0.999 < r < 0.9999
+    # it correlates with every band, above geosr's weak-correlation warning (0.6), and
+    # equals none (measured 0.64, 0.89, 0.70, 0.70)
+    from geosr.pipeline.guided import WEAK_CORRELATION
+
+    for b in range(4):
+        assert WEAK_CORRELATION < pearsonr(pan, bands[:, b]).statistic < 0.95, demo.BANDS[b]
+
+
+def test_guide_scene_is_one_pan_band_on_the_truth_grid(tmp_path, small):
+    guide = demo.guide_scene(small)
+    assert guide.data.shape == (1, 192, 192) and guide.transform == small.transform
+    path = demo.write_scene(tmp_path / "g.tif", guide)
+    with rasterio.open(path) as ds:
+        assert ds.count == 1 and ds.descriptions == (demo.GUIDE_BAND,) and ds.res == (3.0, 3.0)
+        np.testing.assert_array_equal(ds.read(1), small.guide)
+        np.testing.assert_array_equal(ds.dataset_mask() > 0, small.valid)
+    from geosr.errors import InputError
+
+    with pytest.raises(InputError, match="must have a guide band"):
+        demo.guide_scene(demo.degrade_scene(small))
 
 
 # -------------------------------------------------------------- the input
@@ -182,6 +232,17 @@ def test_quicklook_refuses_mismatched_panels():
 
 
 # ------------------------------------------------------------ the whole run
+#: The demo's files by role, in the order the command prints them.
+NAMES = {
+    "truth": "valley-truth-3m.tif",
+    "input": "valley-input-9m.tif",
+    "guide": "valley-guide-3m.tif",
+    "output": "valley-geosr-x3.tif",
+    "guided": "valley-geosr-guided-x3.tif",
+    "quicklook": "valley-quicklook.png",
+}
+
+
 @pytest.fixture
 def model_x3(tmp_path, tiny_sparse_x3):
     path = tmp_path / "tiny-x3.npz"
@@ -189,9 +250,54 @@ def model_x3(tmp_path, tiny_sparse_x3):
     return path
 
 
+def independent_psnr(paths):
+    """PSNR of each method against the truth, by scikit-image, from the files alone.
+
+    Over the pixels valid in the truth and both geosr outputs, all bands pooled,
+    peak the truth's range there (the convention of geosr.core.metrics.psnr).
+    """
+    from skimage.metrics import peak_signal_noise_ratio
+
+    from geosr.core.resample import upscale_bicubic
+
+    def read(role):
+        with rasterio.open(paths[role]) as ds:
+            return ds.read().astype(np.float64), ds.dataset_mask() > 0
+
+    truth, valid = read("truth")
+    low, low_valid = read("input")
+    single, single_valid = read("output")
+    guided, guided_valid = read("guided")
+    valid &= single_valid & guided_valid
+    images = {
+        "nearest": np.repeat(np.repeat(low, 3, axis=1), 3, axis=2),
+        "bicubic": upscale_bicubic(fill_nodata(low, low_valid), 3),
+        "single-image": single,
+        "guided": guided,
+    }
+    ref = truth[:, valid]
+    return {name: peak_signal_noise_ratio(ref, image[:, valid], data_range=np.ptp(ref))
+            for name, image in images.items()}
+
+
+def printed_psnr(stdout):
+    """The PSNR line of ``geosr demo`` as {method: dB}."""
+    line = stdout.strip().splitlines()[-1]
+    parts = [part.split() for part in line.split(":", 1)[1].split(",")]
+    return {name: float(value) for name, value, _ in parts}
+
+
 def check_demo_files(paths, size):
+    with rasterio.open(paths["guide"]) as g, rasterio.open(paths["guided"]) as go:
+        # the guide sits on the truth's grid, three times finer than the input
+        assert (g.width, g.height, g.count) == (size, size, 1) and g.descriptions == ("pan",)
+        assert (go.width, go.height, go.count) == (size, size, 4) and go.nodata == 0
+        assert go.tags()["GEOSR_METHOD"] == "guided" and go.tags()["GEOSR_SYNTHESIZED"] == "yes"
+        guide_transform, guide_crs = g.transform, g.crs
+        assert go.transform.almost_equals(g.transform) and go.crs == g.crs
     with rasterio.open(paths["truth"]) as t, rasterio.open(paths["input"]) as i, \
             rasterio.open(paths["output"]) as o:
+        assert guide_transform == t.transform and guide_crs == t.crs
         assert (t.width, t.height) == (size, size) and (i.width, i.height) == (size // 3, size // 3)
         assert (o.width, o.height) == (size, size) and o.count == 4
         assert t.crs == i.crs == o.crs and CRS.from_user_input(o.crs.to_wkt()).utm_zone == "33N"
@@ -205,6 +311,95 @@ def check_demo_files(paths, size):
         assert valid.mean() > 0.8
     assert Path(paths["quicklook"]).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     return truth, out, valid
+
+
+@pytest.fixture(scope="module")
+def guided_run(tmp_path_factory):
+    """``run_demo`` at 192 x 192 (seed 3) with the shipped model; the quick look's panels kept."""
+    import geosr.demo.run
+
+    shown = []
+
+    def keep(path, panels, **kwargs):
+        shown.append(panels)
+        return demo.write_quicklook(path, panels, **kwargs)
+
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(geosr.demo.run, "write_quicklook", keep)
+        result = demo.run_demo(tmp_path_factory.mktemp("guided") / "out", size=192, seed=3)
+    return result, shown[0]
+
+
+def test_guide_file_is_on_the_exact_3x_finer_grid_of_the_input(guided_run):
+    paths, _ = guided_run
+    with rasterio.open(paths["guide"]) as g, rasterio.open(paths["input"]) as i:
+        # pixel sizes 3 m and 9 m: a ratio of exactly 3, same CRS, same origin
+        assert g.res == (3.0, 3.0) and i.res == (9.0, 9.0)
+        assert g.crs == i.crs and (g.transform.c, g.transform.f) == (i.transform.c, i.transform.f)
+        # the affine package's arithmetic is the reference for "3 times finer"
+        assert g.transform == i.transform @ Affine.scale(1 / 3)
+        assert (g.width, g.height) == (3 * i.width, 3 * i.height) and g.bounds == i.bounds
+        assert g.nodata == 0 and g.dtypes == ("uint16",)
+        np.testing.assert_array_equal(g.read(1), demo.make_scene(192, seed=3).guide)
+
+
+def test_guided_result_beats_single_image_and_bicubic(guided_run):
+    paths, _ = guided_run
+    psnr = independent_psnr(paths)
+    assert paths["psnr"] == pytest.approx(psnr, abs=1e-9)  # geosr.core.metrics agrees with skimage
+    assert list(paths["psnr"]) == list(demo.METHODS)
+    # measured at 192 x 192, seed 3: nearest 27.79, bicubic 29.67, single-image 31.16,
+    # guided 34.38 dB; the margins asserted are 0.3 dB below those measured
+    assert psnr["nearest"] < psnr["bicubic"] < psnr["single-image"]
+    assert psnr["guided"] - psnr["single-image"] > 2.9, psnr
+    assert psnr["guided"] - psnr["bicubic"] > 4.4, psnr
+
+
+def test_quick_look_shows_five_panels_in_order(guided_run):
+    from matplotlib.image import imread
+
+    paths, panels = guided_run
+    labels = [label for label, _ in panels]
+    assert len(labels) == 5
+    for label, word in zip(labels, ["nearest", "bicubic", "single-image", "guided", "truth"]):
+        assert word in label, labels
+    # 4 in per panel at 100 dpi, 9 in high: the four-panel quick look was 1600 wide
+    assert imread(paths["quicklook"]).shape[:2] == (900, 5 * 400)
+    assert "synthesized by a statistical model, not measured" in demo.CAPTION
+
+
+def test_demo_never_overwrites_its_inputs(guided_run):
+    paths, _ = guided_run
+    files = [paths[role] for role in NAMES]
+    assert len(set(files)) == len(files)
+    assert [Path(f).name for f in files] == list(NAMES.values())
+    # what the two magnifications read is still what the demo generated
+    scene = demo.make_scene(192, seed=3)
+    data, _ = demo.read_scene(paths["input"])
+    np.testing.assert_array_equal(data, demo.degrade_scene(scene).data)
+    guide, _ = demo.read_scene(paths["guide"])
+    np.testing.assert_array_equal(guide[0], scene.guide)
+    from geosr.errors import DestinationError
+    from geosr.pipeline.magnify import magnify_raster
+
+    with pytest.raises(DestinationError):  # the guide can never be the destination
+        magnify_raster(paths["input"], paths["guide"], guide=paths["guide"], overwrite=True)
+
+
+def test_same_seed_same_files_but_the_creation_time(guided_run, tmp_path):
+    import filecmp
+
+    paths, _ = guided_run
+    again = demo.run_demo(tmp_path / "again", size=192, seed=3)
+    for role in ("truth", "input", "guide", "quicklook"):
+        assert filecmp.cmp(paths[role], again[role], shallow=False), role
+    for role in ("output", "guided"):
+        with rasterio.open(paths[role]) as a, rasterio.open(again[role]) as b:
+            np.testing.assert_array_equal(a.read(), b.read())
+            tags_a, tags_b = a.tags(), b.tags()
+            assert tags_a.pop("GEOSR_CREATED") and tags_b.pop("GEOSR_CREATED")
+            assert tags_a == tags_b
+    assert again["psnr"] == paths["psnr"]
 
 
 def test_run_demo_with_a_given_model(tmp_path, model_x3):
@@ -221,10 +416,12 @@ def test_demo_command_prints_where_each_file_went(tmp_path, model_x3, monkeypatc
                                       "--size", "192"])
     assert result.exit_code == 0, result.stderr
     lines = result.stdout.strip().splitlines()
-    assert len(lines) == 4
-    for line, name in zip(lines, ["valley-truth-3m.tif", "valley-input-9m.tif",
-                                  "valley-geosr-x3.tif", "valley-quicklook.png"]):
+    assert len(lines) == 7
+    for line, name in zip(lines, NAMES.values()):
         assert line.endswith(str(tmp_path / "d" / name)) and Path(line.split()[-1]).is_file()
+    assert lines[-1].startswith("PSNR against the truth:")
+    assert [part.split()[0] for part in lines[-1].split(":", 1)[1].split(",")] == list(demo.METHODS)
+    assert all(part.strip().endswith(" dB") for part in lines[-1].split(",")), lines[-1]
     assert result.stderr == ""
 
 
@@ -264,12 +461,9 @@ def test_geosr_demo_end_to_end_with_the_shipped_model(tmp_path):
     proc = subprocess.run(cmd + ["demo", str(tmp_path / "demo")], check=False,
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stderr
-    names = ["valley-truth-3m.tif", "valley-input-9m.tif", "valley-geosr-x3.tif",
-             "valley-quicklook.png"]
-    for name in names:
+    for name in NAMES.values():
         assert str(tmp_path / "demo" / name) in proc.stdout
-    paths = dict(zip(["truth", "input", "output", "quicklook"],
-                     [tmp_path / "demo" / n for n in names]))
+    paths = {role: tmp_path / "demo" / name for role, name in NAMES.items()}
     truth, out, valid = check_demo_files(paths, 768)
     # the magnified detail is closer to the truth than bicubic interpolation of the input
     from geosr.core.resample import upscale_bicubic
@@ -284,3 +478,9 @@ def test_geosr_demo_end_to_end_with_the_shipped_model(tmp_path):
     err_geosr = demo.rmse(truth, out, inner)
     err_bicubic = demo.rmse(truth, bicubic, inner)
     assert err_geosr < err_bicubic, (err_geosr, err_bicubic)
+    # the full-size guided result: measured 39.42 dB, 3.39 dB above single-image (36.04)
+    # and 4.69 dB above bicubic (34.74), seed 0
+    psnr = independent_psnr(paths)
+    assert psnr["guided"] - psnr["single-image"] > 3.1, psnr
+    assert psnr["guided"] - psnr["bicubic"] > 4.4, psnr
+    assert printed_psnr(proc.stdout) == pytest.approx(psnr, abs=0.006)
