@@ -340,9 +340,11 @@ def model_card(
         band name, scale, method, parameters, training provenance, sha256)
         and ``caution``.
     """
+    header = read_header(path)
+    if models is None and header.get("format") == GUIDED_FORMAT:
+        return _guided_card(path, header, load_guided_model(path))
     if models is None:
         models = load_models(path)
-    header = read_header(path)
     entries = []
     for n, m in enumerate(models):
         params = m.get_params()
@@ -449,3 +451,31 @@ def load_guided_model(path: str | os.PathLike) -> GuidedRegression:
     model.band_names_ = header.get("band_names")
     model.training_ = dict(header.get("training") or {})
     return model
+
+
+def _guided_card(path, header, model):
+    """The model card of a guided model file: one entry per band it sharpens."""
+    params = _guided_params(model)
+    training = dict(getattr(model, "training_", {}) or {})
+    names = getattr(model, "band_names_", None) or [None] * model.n_targets_
+    entries = []
+    for n in range(model.n_targets_):
+        band = {"guide correlation": round(float(model.correlation_[n]), 4),
+                "training samples": int(model.n_samples_[n])}
+        if n == 0:
+            band.update({k: v for k, v in training.items() if k != "correlation"})
+        entries.append({
+            "index": n, "band_name": names[n], "scale": int(model.scale), "method": "guided",
+            "parameters": params, "training": band, "sha256": model.sha256_,
+        })
+    return {
+        "file": os.fspath(path),
+        "size_bytes": os.path.getsize(path),
+        "written_by": header.get("geosr_version"),
+        "format_version": header.get("format_version"),
+        "read_by": _version.__version__,
+        "scale": int(model.scale),
+        "shared": False,
+        "models": entries,
+        "caution": CAUTION,
+    }

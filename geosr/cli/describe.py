@@ -12,6 +12,8 @@ from . import options
 _METHOD_NAMES = {
     "sparse": "sparse coding over coupled K-SVD dictionaries (Zeyde, Elad & Protter 2010)",
     "anchored": "anchored neighbourhood regression, A+ (Timofte, De Smet & Van Gool 2014)",
+    "guided": "ridge regression over joint features of the band and a finer guide, "
+    "learned on the scene at reduced resolution (use with --guide)",
 }
 
 
@@ -46,7 +48,8 @@ def format_card(card, width=78):
     if card.get("written_by"):
         row("written by", f"geosr {card['written_by']} (model format {card.get('format_version')})")
     row("scale", f"x{card['scale']}")
-    row("models", "1 model for every band" if n == 1 else f"{n} models, one per band")
+    shared = card.get("shared", n == 1)
+    row("models", "1 model for every band" if shared else f"{n} model{'s' if n != 1 else ''}, one per band")
 
     def params_of(entry):
         return {k: v for k, v in entry["parameters"].items() if k not in ("scale", "method")}
@@ -65,8 +68,9 @@ def format_card(card, width=78):
     for entry in models:
         lines.append("")
         title = "model" if n == 1 else f"model {entry['index'] + 1} of {n}"
-        if entry.get("band_name"):
-            title += f" (band {entry['band_name']})"
+        name = entry.get("band_name")
+        if name:
+            title += f" ({name})" if str(name).startswith("band ") else f" (band {name})"
         lines.append("  " + title)
         if not common:
             method_rows(entry, 4)
@@ -107,7 +111,7 @@ def describe(ctx, model, scale, as_json):
             f"got {'both' if model is not None else 'neither'}",
             ctx=ctx,
         )
-    from ..modelfile import default_model_path, load_models, model_card
+    from ..modelfile import default_model_path, model_card
 
     if model is None:
         path = default_model_path(scale)
@@ -119,8 +123,7 @@ def describe(ctx, model, scale, as_json):
                 "this installation has no default model for it"
             )
         model = str(path)
-    models = load_models(model)
-    card = model_card(model, models)
+    card = model_card(model)
     if as_json:
         click.echo(json.dumps(card, indent=2, sort_keys=False))
     else:

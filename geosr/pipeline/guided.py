@@ -231,7 +231,7 @@ def _guided_task(job, shared):
     for i, role in enumerate(bp.roles):
         if role < 0:
             values[i] = nearest_magnify(data[i][inner], s)
-            ok[i] = True
+            ok[i] = nearest_magnify(valid[i][inner], s)
             continue
         values[i] = guided[magnified.index(i)]
         ok[i] = nearest_magnify(valid[i][inner], s) & np.isfinite(values[i])
@@ -465,7 +465,7 @@ def train_guided(
     model.training_ = {
         "source": {"name": info.name, "bands": list(split.magnified)},
         "guides": [{"name": os.path.basename(path), "sha256": sha} for path, sha in zip(spec.paths, spec.sha256)],
-        "guide_bands": [[int(f) + 1, int(b)] for f, b in spec.bands],
+        "guide_bands": [f"{os.path.basename(spec.paths[f])}:{b}" for f, b in spec.bands],
         "correlation": [float(r) for r in model.correlation_],
     }
     warn_weak_correlation(model, names)

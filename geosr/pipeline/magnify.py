@@ -267,17 +267,25 @@ def _creation_options(plan, opts):
 
 
 def _warn_georeferencing(info):
-    if info.crs is None and not (info.gcps and info.gcps_crs is not None):
+    # RPCs are carried, scaled to the new grid (geosr.raster.transforms.scale_rpcs).
+    if info.crs is None and not (info.gcps and info.gcps_crs is not None) and info.rpcs is None:
         what = "a geotransform" if not info.transform.is_identity else "no georeferencing"
         warnings.warn(
             f"The source raster {info.name!r} has no CRS ({what}); the output has no CRS either",
             GeoreferencingWarning,
             stacklevel=4,
         )
-    if info.has_rpcs:
+
+
+def _warn_categorical(info, categorical):
+    """Say that palette and 1-bit bands are copied by nearest neighbour, not synthesized."""
+    if categorical:
         warnings.warn(
-            f"The source raster {info.name!r} has RPCs; they are not carried to the output",
-            GeoreferencingWarning,
+            f"The source raster {info.name!r} has categorical band"
+            f"{'s' if len(categorical) > 1 else ''} {', '.join(map(str, categorical))} (palette or "
+            "1-bit); categorical bands are not synthesized: they are magnified by nearest "
+            "neighbour, which keeps every value one of the source's categories",
+            UserWarning,
             stacklevel=4,
         )
 
@@ -293,9 +301,10 @@ def _describe_output(plan: MagnifyPlan, opts: _Options, guided: Any = None) -> _
     info, bp = plan.info, plan.block_plan
     gt_opts, cog_opts = _creation_options(plan, opts)
     _warn_georeferencing(info)
+    _warn_categorical(info, plan.bands.categorical)
     if guided is None:
         method_name = model_method(plan.models[0])
-        shas = [model_sha(plan.models[r]) for r in bp.roles if r >= 0]
+        shas = [model_sha(plan.models[r]) for r in bp.roles if r >= 0] or ["none"]
     else:
         method_name, shas = GUIDED_METHOD, [guided.model.sha256_]
     created = utc_now()
@@ -370,7 +379,7 @@ def _run_blocks(plan, output, tmp, opts, run=None):
             _warn_residuals(residuals)
         if run.finish is not None:
             out.update_tags(*run.finish(counts))
-    if counts["valid"] == 0:
+    if counts["valid"] == 0 and n_magnified:
         warnings.warn(
             f"The source raster {plan.info.name!r} has no valid pixel in the magnified bands; "
             "the output is entirely nodata",
@@ -475,6 +484,11 @@ def _plan_guided(src, dst, model, bands, guide, guide_bands, opts):
     check_guided_options(opts)
     info = inspect_source(src)
     split = split_bands(info, bands)
+    if not split.magnified:
+        raise ParameterError(
+            f"The bands of {info.name!r} must include one that is not alpha or categorical for "
+            "guided magnification, got none"
+        )
     guides = [guide] if isinstance(guide, (str, os.PathLike)) else list(guide)
     spec = open_guides(guides, info, scale=opts.scale, guide_bands=guide_bands)
     dtype = _output_dtype(info, split.selected)

@@ -3,7 +3,8 @@
 Before any pixel is computed a run settles four things, in this order:
 
 1. which bands take part and in which role (:func:`split_bands`: magnified
-   by a model, or alpha and magnified by nearest neighbour);
+   by a model, or alpha or categorical (palette, 1-bit) and magnified by
+   nearest neighbour);
 2. which models serve them (:func:`resolve_models`: one shared model or one
    per magnified band, from an object, a list of them, a model file, or the
    model shipped for the scale; checked against the requested scale and
@@ -81,20 +82,26 @@ class BandSplit:
     selected : tuple of int
         1-based source bands in output order.
     magnified : tuple of int
-        The selected bands that are not alpha: each is magnified by a model.
+        The selected bands that are neither alpha nor categorical: each is
+        magnified by a model.
     alpha : tuple of int
         The selected alpha bands: magnified by nearest neighbour.
+    categorical : tuple of int
+        The selected palette (colour-table) and 1-bit bands: magnified by
+        nearest neighbour, which keeps every value one of the source's
+        categories.
     """
 
     selected: tuple[int, ...]
     magnified: tuple[int, ...]
     alpha: tuple[int, ...]
+    categorical: tuple[int, ...] = ()
 
     def roles(self, n_models: int) -> tuple[int, ...]:
-        """For each selected band the index of its model, or -1 for alpha."""
+        """For each selected band the index of its model, or -1 for nearest neighbour."""
         shared = n_models == 1
         return tuple(
-            -1 if b in self.alpha else (0 if shared else self.magnified.index(b))
+            (0 if shared else self.magnified.index(b)) if b in self.magnified else -1
             for b in self.selected
         )
 
@@ -116,17 +123,18 @@ def split_bands(info: SourceInfo, bands: Any = None) -> BandSplit:
     Raises
     ------
     ParameterError
-        A bad selection, or one with no band that is not alpha.
+        A bad selection, or one with only alpha bands.
     """
     selected = check_bands(bands, info.count)
     alpha = tuple(b for b in selected if info.is_alpha(b))
-    magnified = tuple(b for b in selected if not info.is_alpha(b))
-    if not magnified:
+    categorical = tuple(b for b in selected if not info.is_alpha(b) and info.is_categorical(b))
+    magnified = tuple(b for b in selected if b not in alpha and b not in categorical)
+    if not magnified and not categorical:
         raise ParameterError(
             f"The 'bands' parameter must select at least one band that is not alpha, got bands "
             f"{', '.join(map(str, selected))}"
         )
-    return BandSplit(selected, magnified, alpha)
+    return BandSplit(selected, magnified, alpha, categorical)
 
 
 # ------------------------------------------------------------------- models

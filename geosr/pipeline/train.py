@@ -56,12 +56,16 @@ def _model_params(scale, method, max_samples, random_state, model_params):
 
 
 def _select_bands(infos: Sequence[SourceInfo], bands: Any, shared: bool) -> list[tuple[int, ...]]:
-    """The bands each reference lends (never alpha); equal counts for per-band models."""
+    """The bands each reference lends (never alpha or categorical); equal counts for per-band models."""
     selections = []
     for info in infos:
-        sel = tuple(b for b in check_bands(bands, info.count) if not info.is_alpha(b))
+        sel = tuple(b for b in check_bands(bands, info.count)
+                    if not (info.is_alpha(b) or info.is_categorical(b)))
         if not sel:
-            raise InputError(f"The reference {info.name!r} must have a band that is not alpha, got none")
+            raise InputError(
+                f"The reference {info.name!r} must have a band that is not alpha or categorical "
+                "(palette, 1-bit), got none"
+            )
         selections.append(sel)
     n_bands = len(selections[0])
     if not shared and any(len(s) != n_bands for s in selections):

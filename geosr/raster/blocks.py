@@ -58,7 +58,7 @@ class BlockPlan:
         Source bands to read, 1-based, in output order.
     roles : tuple of int
         For each band the index of its model in the model list, or -1 to
-        magnify it by nearest neighbour (alpha bands).
+        magnify it by nearest neighbour (alpha and categorical bands).
     halo : int
         Context per side in source pixels (at least every model's radius).
     scale : int
@@ -268,7 +268,7 @@ def block_values(plan, block, models, dtype):
         v_in = valid[i][inner]
         if role < 0:
             values[i] = nearest_magnify(data[i][inner], s)
-            ok[i] = True
+            ok[i] = nearest_magnify(v_in, s)
             continue
         if not v_in.any():
             continue
@@ -340,7 +340,11 @@ def block_result(plan, block, values, ok, stats=None, n_fallback=0):
     n_valid = 0
     for i, role in enumerate(plan.roles):
         if role < 0:
+            # Copied values (alpha, categories) are never moved; their invalid pixels take nodata.
             out[i] = values[i].astype(out_dtype)
+            if nodata is not None:
+                out[i][~ok[i]] = out_dtype.type(nodata)
+            all_ok &= ok[i]
             continue
         out[i], band_ok = to_output_dtype(values[i], ok[i], out_dtype, nodata)
         all_ok &= band_ok

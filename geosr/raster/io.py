@@ -32,6 +32,7 @@ from ..errors import DestinationError, InputError, ParameterError
 __all__ = [
     "SUPPORTED_DTYPES",
     "SourceInfo",
+    "check_utf8_path",
     "inspect_source",
     "open_source",
     "parse_bands",
@@ -60,9 +61,37 @@ def _is_local_path(path):
         return False
     if re.match(r"^[A-Za-z][A-Za-z0-9+.\-]*://", text):
         return False
-    if re.match(r"^[A-Z0-9_]+:", text) and not os.path.exists(text):  # e.g. NETCDF:"f.nc":var
+    # A GDAL subdataset, NETCDF:"f.nc":var, or as rasterio lists it, netcdf:/f.nc:var
+    # (two characters at least: C:\\ is a drive).
+    if re.match(r"^[A-Za-z][A-Za-z0-9_]+:", text) and not os.path.exists(text):
         return False
     return True
+
+
+def _shown(text):
+    """``text`` for a message; bytes that are not UTF-8 shown as ``\\xe9``."""
+    return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+
+
+def check_utf8_path(text, where, error):
+    """Refuse a path GDAL cannot be given: one with bytes that are not UTF-8.
+
+    Parameters
+    ----------
+    text : str
+        The path (undecodable bytes arrive as surrogate escapes).
+    where : str
+        What the path is, for the message ("The source raster").
+    error : type
+        The :class:`~geosr.errors.GeosrError` subclass to raise.
+    """
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        raise error(
+            f"{where} '{_shown(text)}' must have a name GDAL can open (valid UTF-8), got bytes "
+            "that are not UTF-8; rename the file or link to it under a UTF-8 name"
+        ) from None
 
 
 def _check_path_type(path, name):
@@ -103,6 +132,12 @@ class SourceInfo:
         Default-domain dataset tags.
     band_tags : tuple of dict
     driver : str
+    rpcs : rasterio.rpc.RPC or None
+        The rational polynomial coefficients, when the raster has them.
+    colormaps : tuple of dict or None
+        One per band: the colour table (value -> RGBA), or None.
+    nbits : tuple of int or None
+        One per band: the ``NBITS`` image-structure value, or None.
     """
 
     path: str
@@ -126,6 +161,9 @@ class SourceInfo:
     tags: dict
     band_tags: tuple
     driver: str
+    rpcs: object = None
+    colormaps: tuple = ()
+    nbits: tuple = ()
 
     @property
     def georeferenced(self):
@@ -135,6 +173,13 @@ class SourceInfo:
     def is_alpha(self, band):
         """Whether 1-based ``band`` is an alpha band."""
         return self.colorinterp[band - 1] == ColorInterp.alpha
+
+    def is_categorical(self, band):
+        """Whether 1-based ``band`` holds categories: a palette (colour table) or 1-bit data."""
+        i = band - 1
+        palette = self.colorinterp[i] == ColorInterp.palette or (
+            i < len(self.colormaps) and self.colormaps[i] is not None)
+        return palette or (i < len(self.nbits) and self.nbits[i] == 1)
 
     def may_be_masked(self, band):
         """Whether some pixels of 1-based ``band`` can be invalid."""
@@ -155,6 +200,7 @@ def open_source(path):
     rasterio.io.DatasetReader
     """
     text = _check_path_type(path, "src")
+    check_utf8_path(text, "The source raster", InputError)
     where = f"The source raster {text!r}"
     if _is_local_path(text):
         if not os.path.exists(text):
@@ -176,10 +222,44 @@ def open_source(path):
         raise InputError(
             f"{where} must be an intact raster, got a damaged or truncated file: {problems[0]}"
         )
+    missing = _missing_members(dataset)
+    if missing:
+        dataset.close()
+        raise InputError(f"{where} must have every file it reads from, got a missing file {missing!r}")
     try:
         yield dataset
     finally:
         dataset.close()
+
+
+def _missing_members(ds):
+    """The first local file a VRT (or another multi-file raster) reads that is missing, or None."""
+    try:
+        files = list(ds.files or ())
+    except RasterioError:
+        return None
+    for name in files[1:]:  # the first is the dataset's own file
+        if _is_local_path(name) and not os.path.exists(name):
+            return name
+    return None
+
+
+def _no_bands_message(ds, where):
+    """The error for a raster with no band: a container lists its subdatasets."""
+    try:
+        subs = list(ds.subdatasets)
+    except (RasterioError, AttributeError):
+        subs = []
+    if not subs:
+        return (f"{where} must have at least one band of 1 x 1 pixels, got {ds.count} bands "
+                f"of {ds.width} x {ds.height}")
+    shown = ", ".join(subs[:_SUBDATASETS_SHOWN]) + (", …" if len(subs) > _SUBDATASETS_SHOWN else "")
+    return (f"{where} must have bands, got a container of {len(subs)} subdatasets; name one of "
+            f"them as the source: {shown}")
+
+
+#: Subdatasets named in the error for a container with no bands.
+_SUBDATASETS_SHOWN = 4
 
 
 class _IOProblems(logging.Handler):
@@ -254,10 +334,7 @@ def inspect_source(path):
     where = f"The source raster {text!r}"
     with open_source(text) as ds:
         if ds.width < 1 or ds.height < 1 or ds.count < 1:
-            raise InputError(
-                f"{where} must have at least one band of 1 x 1 pixels, got {ds.count} bands "
-                f"of {ds.width} x {ds.height}"
-            )
+            raise InputError(_no_bands_message(ds, where))
         for band, dtype in enumerate(ds.dtypes, start=1):
             if dtype not in SUPPORTED_DTYPES:
                 raise InputError(
@@ -269,9 +346,9 @@ def inspect_source(path):
             warnings.simplefilter("ignore", NotGeoreferencedWarning)
             gcps, gcps_crs = ds.gcps
             try:
-                has_rpcs = ds.rpcs is not None
+                rpcs = ds.rpcs
             except (RasterioError, AttributeError):
-                has_rpcs = False
+                rpcs = None
             transform = ds.transform
         try:
             band_tags = tuple(ds.tags(b) for b in ds.indexes)
@@ -296,11 +373,31 @@ def inspect_source(path):
             transform=transform,
             gcps=tuple(gcps or ()),
             gcps_crs=gcps_crs,
-            has_rpcs=has_rpcs,
+            has_rpcs=rpcs is not None,
             tags=dict(tags),
             band_tags=band_tags,
             driver=ds.driver,
+            rpcs=rpcs,
+            colormaps=tuple(_colormap(ds, b) for b in ds.indexes),
+            nbits=tuple(_nbits(ds, b) for b in ds.indexes),
         )
+
+
+def _colormap(ds, band):
+    """The colour table of a band (value -> RGBA), or None."""
+    try:
+        return dict(ds.colormap(band))
+    except (ValueError, RasterioError):
+        return None
+
+
+def _nbits(ds, band):
+    """The ``NBITS`` of a band (from its IMAGE_STRUCTURE metadata), or None."""
+    try:
+        value = ds.tags(band, ns="IMAGE_STRUCTURE").get("NBITS")
+        return int(value) if value else None
+    except (ValueError, RasterioError):
+        return None
 
 
 def parse_bands(text):
@@ -535,6 +632,7 @@ def check_destination(dst, sources=(), overwrite=False, name="dst", *, reads=(),
         The absolute destination path.
     """
     text = _check_path_type(dst, name)
+    check_utf8_path(text, "The destination", DestinationError)
     what = f"The STAC sidecar {text!r}" if name == "stac" else f"The destination {text!r}"
     if not _is_local_path(text):
         raise DestinationError(f"{what} must be a local file path, got a GDAL or URL path")

@@ -25,7 +25,7 @@ __all__ = [
 class MaskMode(str, enum.Enum):
     """How the output records invalid pixels."""
 
-    NODATA = "nodata"  # the source's nodata value, in every band
+    NODATA = "nodata"  # one nodata value for the file; each band's own invalid pixels
     MASK = "mask"  # an internal per-dataset mask band
     ALPHA = "alpha"  # an alpha band among the output bands
     NONE = "none"  # no mask; NaN in float bands where the input was not finite
@@ -47,17 +47,33 @@ def mask_mode(info, bands, alpha_bands):
     mode : MaskMode
     nodata : float or None
         The output nodata value (only for ``MaskMode.NODATA``).
+
+    Notes
+    -----
+    A GeoTIFF holds one nodata value for all its bands. When the selected
+    bands have different nodata values (a VRT or a netCDF can give each band
+    its own), or only some have one, the output takes one value for every
+    band: NaN for a float output, else the first band's value the output
+    type can hold. Each band's invalid pixels take it, so every band keeps
+    its own validity; a valid pixel that equals it is moved one step (see
+    :func:`to_output_dtype`).
     """
     from rasterio.enums import MaskFlags
 
     nodata = [info.nodatavals[b - 1] for b in bands]
-    defined = [v for v in nodata if v is not None]
+    defined = [float(v) for v in nodata if v is not None]
     dtype = np.dtype(np.result_type(*[info.dtypes[b - 1] for b in bands]))
-    if defined and len(defined) == len(nodata) and _representable(defined[0], dtype):
+    if defined:
         first = defined[0]
-        same = all((np.isnan(v) and np.isnan(first)) or v == first for v in defined)
-        if same:
-            return MaskMode.NODATA, float(first)
+        same = len(defined) == len(nodata) and all(
+            (np.isnan(v) and np.isnan(first)) or v == first for v in defined)
+        if same and _representable(first, dtype):
+            return MaskMode.NODATA, first
+        if not same and dtype.kind == "f":
+            return MaskMode.NODATA, float("nan")
+        shared = next((v for v in defined if _representable(v, dtype)), None)
+        if not same and shared is not None:
+            return MaskMode.NODATA, shared
     if alpha_bands:
         return MaskMode.ALPHA, None
     flags = [info.mask_flags[b - 1] for b in bands]
@@ -68,7 +84,7 @@ def mask_mode(info, bands, alpha_bands):
 
 def _representable(value, dtype):
     """Whether a nodata value can be stored in ``dtype``."""
-    if np.isnan(value):
+    if not np.isfinite(value):  # NaN and +-inf: float types hold them
         return dtype.kind == "f"
     if dtype.kind in "iu":
         lo, hi = _dtype_range(dtype)

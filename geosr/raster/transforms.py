@@ -5,7 +5,9 @@ pixels along each axis; its geotransform is the source's composed with a
 scaling of pixel coordinates, ``src.transform * Affine.scale(1 / s)``, which
 also holds for rotated and sheared transforms. Ground control points keep
 their world coordinates while their pixel coordinates (GDAL's continuous
-pixel/line, corner based) are multiplied by ``s``.
+pixel/line, corner based) are multiplied by ``s``; rational polynomial
+coefficients (RPCs) get their image offsets and scales changed to match
+(:func:`scale_rpcs`).
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ __all__ = [
     "scaled_transform",
     "apply_transform",
     "scale_gcps",
+    "scale_rpcs",
     "crs_summary",
     "ground_sample_distance",
     "wgs84_bbox",
@@ -72,6 +75,39 @@ def scale_gcps(gcps, scale):
                            id=g.id, info=g.info)
         for g in gcps
     ]
+
+
+def scale_rpcs(rpcs, scale):
+    """Rational polynomial coefficients of the raster magnified by ``scale``.
+
+    The polynomials give image line and sample from normalised ground
+    coordinates as ``line = LINE_OFF + LINE_SCALE * f(ground)``, with line
+    and sample counted from the centre of the first pixel (GDAL's RPC
+    transformer adds half a pixel to reach its corner-based coordinates).
+    Magnified by ``s``, the corner-based coordinate ``u`` becomes ``s * u``,
+    so the centre-based one becomes ``s * (line + 0.5) - 0.5``: the offsets
+    become ``s * OFF + (s - 1) / 2`` and the scales ``s * SCALE``. The
+    polynomials, the ground offsets and scales and the error estimates are
+    unchanged.
+
+    Parameters
+    ----------
+    rpcs : rasterio.rpc.RPC
+    scale : int
+
+    Returns
+    -------
+    rasterio.rpc.RPC
+    """
+    from rasterio.rpc import RPC
+
+    s = float(scale)
+    fields = rpcs.to_dict()
+    fields["line_off"] = s * rpcs.line_off + (s - 1.0) / 2.0
+    fields["samp_off"] = s * rpcs.samp_off + (s - 1.0) / 2.0
+    fields["line_scale"] = s * rpcs.line_scale
+    fields["samp_scale"] = s * rpcs.samp_scale
+    return RPC(**fields)
 
 
 def _proj(crs):

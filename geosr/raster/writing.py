@@ -23,7 +23,7 @@ from rasterio.errors import NotGeoreferencedWarning
 
 from ..errors import DestinationError
 from .blocks import READ_ERRORS
-from .transforms import scale_gcps, scaled_transform
+from .transforms import scale_gcps, scale_rpcs, scaled_transform
 
 __all__ = ["output_profile", "OutputRaster", "copy_to_cog"]
 
@@ -55,10 +55,17 @@ def output_profile(info, bands, dtype, scale, nodata, options):
     }
     if info.crs is not None and not info.transform.is_identity:
         profile["crs"] = info.crs
-    if not info.transform.is_identity or not info.gcps:
+    # A raster georeferenced by GCPs or RPCs alone gets no geotransform:
+    # GDAL would prefer it to them.
+    if not info.transform.is_identity or not (info.gcps or info.rpcs is not None):
         profile["transform"] = scaled_transform(info.transform, scale)
     colors = [info.colorinterp[b - 1] for b in bands]
     opts = dict(options)
+    nbits = {info.nbits[b - 1] if b <= len(info.nbits) else None for b in bands}
+    if nbits == {1} and "NBITS" not in opts and np.dtype(dtype) == np.uint8:
+        # 1-bit categories stay 1-bit (magnified by nearest neighbour, values stay 0 and 1).
+        opts["NBITS"] = "1"
+        opts.pop("PREDICTOR", None)
     if (
         "PHOTOMETRIC" not in opts
         and colors[:3] == [ColorInterp.red, ColorInterp.green, ColorInterp.blue]
@@ -97,6 +104,28 @@ def _destination_error(path, exc, what="writing"):
         f"The destination must be writable, got an error while {what} {str(path)!r} "
         f"(disk full or folder removed?): {detail}"
     )
+
+
+def _write_colormaps(ds, info, bands):
+    """Carry the colour tables of the selected palette bands.
+
+    GeoTIFF holds one colour table, for the first band of a byte or 16-bit
+    file: a table the format cannot hold is reported, not silently dropped.
+    """
+    for i, b in enumerate(bands, start=1):
+        cmap = info.colormaps[b - 1] if b <= len(info.colormaps) else None
+        if not cmap:
+            continue
+        if i != 1 or np.dtype(ds.dtypes[0]) not in (np.uint8, np.uint16):
+            warnings.warn(
+                f"The colour table of band {b} of {info.name!r} is not carried: a GeoTIFF holds "
+                "one colour table, for its first band, of byte or 16-bit pixels; select the "
+                "band first (--bands) to keep it",
+                UserWarning,
+                stacklevel=4,
+            )
+            continue
+        ds.write_colormap(i, cmap)
 
 
 class OutputRaster:
@@ -155,10 +184,13 @@ class OutputRaster:
                     ds.set_band_unit(i, info.units[b - 1])
             ds.scales = tuple(info.scales[b - 1] for b in bands)
             ds.offsets = tuple(info.offsets[b - 1] for b in bands)
+            _write_colormaps(ds, info, bands)
             if colorinterp:
                 ds.colorinterp = tuple(info.colorinterp[b - 1] for b in bands)
             if info.transform.is_identity and info.gcps:
                 ds.gcps = (scale_gcps(info.gcps, self.scale), info.gcps_crs)
+            if info.rpcs is not None:
+                ds.rpcs = scale_rpcs(info.rpcs, self.scale)
         except READ_ERRORS as exc:
             raise _destination_error(self.path, exc, "tagging") from None
 

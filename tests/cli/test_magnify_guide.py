@@ -77,6 +77,10 @@ def test_train_a_guided_model_and_reuse_it(pair, tmp_path):
     result = run("train", coarse, "--guide", fine, "-o", tmp_path / "g.npz", "--samples", 5000)
     assert result.exit_code == 0, result.stderr
     assert "guided model" in result.stderr
+    card = run("describe", tmp_path / "g.npz")
+    assert card.exit_code == 0, card.stderr
+    assert "guided: ridge regression" in card.stdout and "guide correlation" in card.stdout
+    assert "fine.tif:1" in card.stdout  # the guide band it learned with
     result = run("magnify", coarse, tmp_path / "out.tif", "--guide", fine, "--model", tmp_path / "g.npz")
     assert result.exit_code == 0, result.stderr
     one_line_error(run("magnify", coarse, tmp_path / "x.tif", "--model", tmp_path / "g.npz"), 1, "guided")

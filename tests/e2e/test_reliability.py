@@ -33,6 +33,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import rasterio
+import rasterio.shutil
 from affine import Affine
 from click.testing import CliRunner
 from rasterio.control import GroundControlPoint
@@ -230,6 +231,133 @@ def config_file(text):
     return make
 
 
+# --- round 2: sources at the edges of GDAL's world
+def make_palette(env):
+    path = _write(env.work / "classes.tif", (camera(40, 44) // 43).astype(np.uint8))
+    with rasterio.open(path, "r+") as ds:
+        ds.write_colormap(1, {k: (40 * k, 255 - 40 * k, 7 * k, 255) for k in range(6)})
+    return path
+
+
+def make_one_bit(env):
+    return _write(env.work / "bits.tif", (camera(40, 44) > 128).astype(np.uint8), nbits=1)
+
+
+def make_band_nodata_vrt(env):
+    a, b = camera(40, 44).astype(np.uint8), camera(40, 44, 300, 200).astype(np.uint8)
+    a[4:9, 5:12], b[15:22, 20:27] = 3, 200
+    member = _write(env.work / "member.tif", np.stack([a, b]))
+    vrt = env.work / "bands.vrt"
+    rasterio.shutil.copy(member, vrt, driver="VRT")
+    text = vrt.read_text()
+    for band, value in ((1, 3), (2, 200)):
+        text = text.replace(f'band="{band}">', f'band="{band}">\n    <NoDataValue>{value}</NoDataValue>', 1)
+    vrt.write_text(text)
+    return vrt
+
+
+def make_inf_nodata(env):
+    img = camera(40, 44).astype(np.float32)
+    img[5:8, 6:10] = -np.inf
+    return _write(env.work / "inf.tif", img, nodata=-np.inf)
+
+
+def make_rpc_only(env):
+    from rasterio.rpc import RPC
+
+    z = [0.0] * 20
+    line, samp, den = list(z), list(z), list(z)
+    line[2], samp[1], den[0] = -1.0, 1.0, 1.0
+    rpc = RPC(height_off=0, height_scale=500, lat_off=40.0, lat_scale=0.05, line_den_coeff=den,
+              line_num_coeff=line, line_off=20.0, line_scale=20.0, long_off=-75.0, long_scale=0.06,
+              samp_den_coeff=den, samp_num_coeff=samp, samp_off=22.0, samp_scale=22.0)
+    path = env.work / "rpc.tif"
+    with rasterio.open(path, "w", driver="GTiff", width=44, height=40, count=1, dtype="uint8") as ds:
+        ds.write(camera(40, 44).astype(np.uint8), 1)
+        ds.rpcs = rpc
+    return path
+
+
+def _netcdf(env):
+    if "netCDF" not in rasterio.drivers.raster_driver_extensions().values():
+        pytest.skip("this GDAL has no netCDF driver")
+    tif = _write(env.work / "vars.tif", np.stack([camera(40, 44), camera(40, 44, 300, 200)]).astype(np.float32),
+                 crs="EPSG:4326", transform=Affine(0.1, 0, 10, 0, -0.1, 50))
+    path = env.work / "vars.nc"
+    rasterio.shutil.copy(tif, path, driver="netCDF")
+    tif.unlink()
+    return path
+
+
+def make_netcdf_subdataset(env):
+    path = _netcdf(env)
+    with rasterio.open(path) as ds:
+        name = ds.subdatasets[1]  # rasterio's lower-case form: netcdf:/path/vars.nc:Band2
+    assert name.startswith("netcdf:")
+    return Path(name)
+
+
+def make_netcdf_container(env):
+    return _netcdf(env)
+
+
+def make_vrt_missing_member(env):
+    member = _write(env.work / "member.tif", camera(40, 44).astype(np.uint8))
+    vrt = env.work / "stack.vrt"
+    rasterio.shutil.copy(member, vrt, driver="VRT")
+    member.unlink()
+    return vrt
+
+
+def make_non_utf8_name(env):
+    good = scene(env)
+    name = Path(os.fsdecode(os.path.join(os.fsencode(env.work), b"caf\xe9.tif")))
+    os.rename(good, name)
+    return name
+
+
+def _check_categorical(s, d):
+    out = d.read(1)
+    assert np.array_equal(out, np.repeat(np.repeat(s.read(1), 2, 0), 2, 1))
+    assert d.tags(1)["GEOSR_RESAMPLING"] == "nearest"
+    assert {k: d.colormap(1)[k] for k in range(2)} == {k: s.colormap(1)[k] for k in range(2)}
+
+
+def _check_one_bit(s, d):
+    _check_categorical(s, d)
+    assert d.tags(1, ns="IMAGE_STRUCTURE")["NBITS"] == "1" and set(np.unique(d.read(1))) == {0, 1}
+
+
+def _check_band_masks(s, d):
+    for band in (1, 2):  # GDAL's own per-band masks, magnified
+        assert np.array_equal(d.read_masks(band) > 0, np.repeat(np.repeat(s.read_masks(band) > 0, 2, 0), 2, 1))
+
+
+def _check_inf_nodata(s, d):
+    assert d.nodata == -np.inf
+    assert np.array_equal(d.read(1) == -np.inf, np.repeat(np.repeat(np.isinf(s.read(1)), 2, 0), 2, 1))
+
+
+def _check_rpcs(s, d):
+    assert d.transform.is_identity and d.rpcs.line_off == 2 * s.rpcs.line_off + 0.5
+    assert d.rpcs.samp_scale == 2 * s.rpcs.samp_scale
+
+
+def _check_same_crs(s, d):
+    assert d.crs == s.crs and np.isfinite(d.read(1)).all()
+
+
+#: What each round-2 source case checks in its output (see _check_success_output).
+SOURCE_CHECKS = {
+    "palette-source": _check_categorical,
+    "one-bit-source": _check_one_bit,
+    "per-band-nodata": _check_band_masks,
+    "infinite-nodata": _check_inf_nodata,
+    "rpc-only": _check_rpcs,
+    "netcdf-subdataset": _check_same_crs,
+}
+
+
 # --- round 2: data loss and destinations
 def make_vrt_with_sidecars(env):
     """A VRT reading member.tif, which has .msk, .ovr and .aux.xml sidecars."""
@@ -390,6 +518,37 @@ CASES = [
     Case("worker-killed", "a dask.distributed worker process dies mid-run", scene, code=0,
          message="geosr: wrote", kind="worker-killed",
          advice="Nothing: its tasks are retried; the output equals an undisturbed run."),
+    # --- round 2: sources at the edges of GDAL's world
+    Case("palette-source", "SRC is a palette (colour-table) raster", make_palette, code=0,
+         message="geosr: warning: The source raster 'classes.tif' has categorical band 1", kind="success",
+         advice="Nothing: its classes are magnified by nearest neighbour and its colour table is kept.",
+         covered_by="tests/pipeline/test_pipeline_sources.py::test_palette_band_keeps_its_classes_and_colour_table"),
+    Case("one-bit-source", "SRC is 1-bit (NBITS=1)", make_one_bit, code=0,
+         message="geosr: warning: The source raster 'bits.tif' has categorical band 1", kind="success",
+         advice="Nothing: it is magnified by nearest neighbour and stays 1-bit (values 0 and 1).",
+         covered_by="tests/pipeline/test_pipeline_sources.py::test_one_bit_source_stays_one_bit"),
+    Case("per-band-nodata", "SRC's bands have different nodata values (a VRT)", make_band_nodata_vrt,
+         code=0, message="geosr: wrote", kind="success",
+         advice="Nothing: each band keeps its own invalid pixels, under one nodata value (the first band's; NaN for floats).",
+         covered_by="tests/pipeline/test_pipeline_sources.py::test_per_band_nodata_keeps_per_band_validity"),
+    Case("infinite-nodata", "SRC's nodata value is -inf", make_inf_nodata, code=0,
+         message="geosr: wrote", kind="success", advice="Nothing: the output's nodata is -inf too.",
+         covered_by="tests/pipeline/test_pipeline_sources.py::test_infinite_nodata_reaches_the_output"),
+    Case("rpc-only", "SRC is georeferenced by RPCs only", make_rpc_only, code=0,
+         message="geosr: wrote", kind="success",
+         advice="Nothing: the RPC line and sample offsets and scales are scaled to the new grid.",
+         covered_by="tests/pipeline/test_pipeline_sources.py::test_rpc_only_source_keeps_its_georeferencing"),
+    Case("netcdf-subdataset", "SRC is a netCDF variable named as rasterio lists it (netcdf:file.nc:var)",
+         make_netcdf_subdataset, code=0, message="geosr: wrote", kind="success",
+         advice="Nothing: the subdataset is opened."),
+    Case("netcdf-container", "SRC is a netCDF file of several variables", make_netcdf_container, code=1,
+         message="name one of them as the source: netcdf:",
+         advice="Name one of the listed subdatasets as SRC."),
+    Case("vrt-missing-member", "SRC is a VRT whose member file is missing", make_vrt_missing_member,
+         code=1, message="got a missing file", advice="Restore the named file, or fix the VRT's path to it."),
+    Case("non-utf8-name", "SRC's name has bytes that are not UTF-8 (caf\\xe9.tif)", make_non_utf8_name,
+         code=1, message="must have a name GDAL can open (valid UTF-8)",
+         advice="Rename the file, or link to it under a UTF-8 name."),
     # --- round 2: data loss and destinations
     Case("dst-vrt-member", "DST is the file a VRT source reads its pixels from", make_vrt_with_sidecars,
          ("--overwrite",), code=1, message="must differ from every file the run reads", kind="dst-read",
@@ -667,6 +826,8 @@ def _check_success_output(src, dst, case):
             assert np.array_equal(np.isnan(b), np.repeat(np.repeat(~np.isfinite(a), 2, 0), 2, 1))
         elif case.id == "one-pixel":
             assert (d.read() == 37).all()
+        elif case.id in SOURCE_CHECKS:
+            SOURCE_CHECKS[case.id](s, d)
         else:
             assert d.transform.almost_equals(s.transform @ Affine.scale(0.5))
 
