@@ -510,6 +510,7 @@ def write_guided_report(
     crop_size: int,
     band_names: Sequence[str],
     guide: np.ndarray,
+    overwrite: bool = True,
 ) -> None:
     """Write the report of a guided assessment, as :func:`write_report` does.
 
@@ -524,4 +525,4 @@ def write_guided_report(
                 + _write_gain_chart(tmp, result, band_names, "guided"))
 
     _write_all(report_dir, result, ref, valid, crop_size, figures,
-               lambda path, names: _write_guided_markdown(path, result, band_names, names))
+               lambda path, names: _write_guided_markdown(path, result, band_names, names), overwrite)
