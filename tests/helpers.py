@@ -129,3 +129,16 @@ def add_sidecars(path):
 
 _GDAL_TYPES = {"uint8": "Byte", "int8": "Int8", "uint16": "UInt16", "int16": "Int16", "uint32": "UInt32",
                "int32": "Int32", "float32": "Float32", "float64": "Float64"}
+
+
+def vrt_with_band_nodata(member, vrt, values):
+    """A VRT at ``vrt`` over the raster ``member`` whose bands declare their own nodata ``values``."""
+    import rasterio.shutil
+
+    rasterio.shutil.copy(member, vrt, driver="VRT")
+    text = Path(vrt).read_text()
+    for band, value in enumerate(values, start=1):
+        tag = f'band="{band}">'
+        text = text.replace(tag, f"{tag}\n    <NoDataValue>{value}</NoDataValue>", 1)
+    Path(vrt).write_text(text)
+    return vrt
