@@ -170,9 +170,9 @@ def _output_dtype(info: SourceInfo, bands: Sequence[int]) -> str:
     return str(np.result_type(*[info.dtypes[b - 1] for b in bands]))
 
 
-def _check_detail_destination(detail_map, reads, outputs, overwrite):
+def _check_detail_destination(detail_map, reads, models, outputs, overwrite):
     """The detail map's path, checked: none of the files read, and not another output."""
-    path = check_destination(detail_map, reads, overwrite, name="detail_map")
+    path = check_destination(detail_map, reads, overwrite, name="detail_map", reads=models, sidecars=(".aux.xml",))
     for out in outputs:
         if out is not None and os.path.realpath(out) == os.path.realpath(path):
             raise DestinationError(
@@ -182,18 +182,26 @@ def _check_detail_destination(detail_map, reads, outputs, overwrite):
     return path
 
 
-def _check_destinations(info, dst, count, scale, dtype, opts, reads=None):
+def _check_destinations(info, dst, count, scale, dtype, opts, reads=None, models=()):
     """The output, STAC and detail map paths (or None), checked; the size refused early.
 
-    ``reads`` lists every file the run reads (the source by default).
+    ``reads`` lists the rasters the run reads (the source by default, then
+    the guides); each one's own files (VRT members, mask, overview and
+    metadata sidecars) are never written, nor the ``models`` files.
     """
     reads = list(reads or [info.path])
-    dst_path = check_destination(dst, reads, opts.overwrite)
+    dst_path = check_destination(dst, reads, opts.overwrite, reads=models, sidecars=(".aux.xml",))
     stac_dst = detail_dst = None
     if opts.stac:
-        stac_dst = check_destination(stac_path(dst_path), [*reads, dst_path], opts.overwrite, name="stac")
+        stac = stac_path(dst_path)
+        if os.path.abspath(stac) == os.fspath(dst_path):
+            raise DestinationError(
+                f"The STAC sidecar {str(stac)!r} must differ from the destination, got the destination "
+                "itself (the sidecar is DST with '.json'); give DST a raster extension such as .tif"
+            )
+        stac_dst = check_destination(stac, reads, opts.overwrite, name="stac", reads=[*models, dst_path])
     if opts.detail_map is not None:
-        detail_dst = _check_detail_destination(opts.detail_map, reads, (dst_path, stac_dst), opts.overwrite)
+        detail_dst = _check_detail_destination(opts.detail_map, reads, models, (dst_path, stac_dst), opts.overwrite)
     out_bytes = scale * scale * info.width * info.height * count * np.dtype(dtype).itemsize
     if out_bytes > opts.max_output_bytes:
         raise InputError(
@@ -206,6 +214,11 @@ def _check_destinations(info, dst, count, scale, dtype, opts, reads=None):
     if opts.check_free_space:
         _check_free_space(dst_path.parent, out_bytes * (2 if opts.cog else 1))
     return dst_path, stac_dst, detail_dst
+
+
+def _model_files(model):
+    """The model file a run reads, as a list (empty for model objects or the shipped model)."""
+    return [os.fspath(model)] if isinstance(model, (str, os.PathLike)) else []
 
 
 def _self_train(info, magnified, scale, opts):
@@ -236,7 +249,7 @@ def _plan(src, dst, model, bands, opts):
         models, scale = choice.models, choice.scale
     elif scale is None:
         raise ParameterError("The 'scale' parameter must be given when no model is, got None")
-    dests = _check_destinations(info, dst, len(split.selected), scale, dtype, opts)
+    dests = _check_destinations(info, dst, len(split.selected), scale, dtype, opts, models=_model_files(model))
     if models is None:
         models = _self_train(info, split.magnified, scale, opts)
     plan = plan_blocks(info, split, list(models), scale, dtype=dtype, chunk_size=opts.chunk_size,
@@ -547,7 +560,7 @@ def _write_outputs(plan, output, dests, opts, run=None, sources=()):
                 return item if detail is None else detail.add_to_stac(item, dst_path)
 
             _write_sidecar(temps, stac_dst, make_item)
-        temps.commit()
+        temps.commit(opts.overwrite)
     return residuals
 
 
@@ -613,8 +626,8 @@ def _plan_guided(src, dst, model, bands, guide, guide_bands, opts):
     bp = guided_block_plan(single.block_plan, where["degradation"], where["sigma"])
     bp = dataclasses.replace(bp, detail=opts.detail_map is not None)
     check_chunk_size(opts.chunk_size, bp.halo)
-    reads = [info.path, *spec.paths] + ([os.fspath(model)] if isinstance(model, (str, os.PathLike)) else [])
-    dests = _check_destinations(info, dst, len(split.selected), spec.scale, dtype, opts, reads)
+    dests = _check_destinations(info, dst, len(split.selected), spec.scale, dtype, opts, [info.path, *spec.paths],
+                                _model_files(model))
     guided_model = given if given is not None else _learn_guided_model(info, bp, spec, opts)
     names = [info.descriptions[b - 1] or f"band {b}" for b in split.magnified]
     warn_weak_correlation(guided_model, names)

@@ -191,6 +191,7 @@ def train_from_rasters(
     retries: int = 2,
     random_state: int | None = _DEFAULTS["random_state"],
     output: str | os.PathLike[str] | None = None,
+    overwrite: bool = True,
     progress: ProgressCallback | None = None,
     **model_params: Any,
 ) -> list[Any]:
@@ -221,6 +222,9 @@ def train_from_rasters(
         Seed of the sampling and of the models.
     output : str or os.PathLike, optional
         Also save the models there (``geosr.modelfile.save_models``).
+    overwrite : bool
+        Replace an existing ``output`` (refused otherwise, also when another
+        run writes it meanwhile).
     progress : callable, optional
         Called as ``progress(done, total)`` with the number of windows read:
         ``(0, total)`` before the first, then once per window. Messages go
@@ -249,7 +253,7 @@ def train_from_rasters(
     spec = scheduler if isinstance(scheduler, SchedulerSpec) else resolve_scheduler(scheduler, workers)
     chunk = check_chunk_size(chunk_size)
     if output is not None:
-        output = check_destination(output, paths, overwrite=True, name="output")
+        output = check_destination(output, paths, overwrite=overwrite, name="output")
     params = _model_params(scale, method, max_samples, random_state, model_params)
 
     infos = [inspect_source(p) for p in paths]
@@ -263,5 +267,5 @@ def train_from_rasters(
     _fit(models, pooled, names, max_samples)
     _record_provenance(models, infos, selections)
     if output is not None:
-        save_models(output, models, band_names=names)
+        save_models(output, models, band_names=names, overwrite=overwrite)
     return models

@@ -157,3 +157,16 @@ def test_guided_report_html(tmp_path):
     assert ["band", "correlation with the guide"] in page.tables
     assert ["method", "QNR", "D_lambda", "D_s"] in page.tables
     assert "detail_map.png" in os.listdir(folder)
+
+
+def test_a_report_with_its_html_can_be_replaced(report, tmp_path):
+    # The folder holds report.html: it is still recognisably a geosr report, so overwrite replaces it.
+    import shutil
+
+    folder = tmp_path / "again"
+    shutil.copytree(report, folder)
+    before = (folder / "report.html").stat().st_mtime_ns
+    assess_raster(report.parent / "ref.tif", folder, 2,
+                  crop_size=48, overwrite=True)
+    assert (folder / "report.html").stat().st_mtime_ns != before
+    assert _parse(folder / "report.html").imgs
