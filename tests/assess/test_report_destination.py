@@ -81,7 +81,7 @@ def test_a_geosr_report_is_replaced_and_nothing_is_left_beside_it(a_report, ref,
     assert code == 0, stderr
     new = json.loads((out / "metrics.json").read_text())
     assert new["protocol"]["reference"] != old["protocol"]["reference"]  # another reference: a new report
-    assert sorted(os.listdir(out)) == sorted({"metrics.json", "report.md", *new["figures"]})
+    assert sorted(os.listdir(out)) == sorted({"metrics.json", "report.md", "report.html", *new["figures"]})
     assert not [n for n in os.listdir(tmp_path) if n.startswith(".geosr-report")]
 
 
