@@ -16,6 +16,8 @@ from .modelfile import load_models as load_models
 from .modelfile import save_guided_model as save_guided_model
 from .modelfile import save_models as save_models
 from .pipeline.array import magnify_array as magnify_array
+from .pipeline.batch import BatchItem as BatchItem
+from .pipeline.batch import magnify_many as magnify_many
 from .pipeline.guided import train_guided as train_guided
 from .pipeline.magnify import magnify_raster as magnify_raster
 from .pipeline.train import train_from_rasters as train_from_rasters
@@ -35,6 +37,8 @@ __all__ = [
     "save_guided_model",
     "magnify_raster",
     "magnify_array",
+    "magnify_many",
+    "BatchItem",
     "train_from_rasters",
     "train_guided",
     "assess_raster",
