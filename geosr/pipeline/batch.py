@@ -63,8 +63,8 @@ TEMPLATE_FIELDS = ("stem", "scale", "method")
 #: What happened to one source.
 STATUSES = ("written", "skipped", "failed")
 
-#: Options of magnify_raster that the batch sets itself.
-_BATCH_KEYS = ("src", "dst", "progress")
+#: The keywords of magnify_raster a batch passes on (the batch sets the others).
+_RASTER_OPTIONS = frozenset(inspect.signature(magnify_raster).parameters) - {"src", "dst", "model", "progress"}
 
 
 @dataclasses.dataclass(frozen=True)
@@ -219,8 +219,7 @@ def _setup(model: Any, options: dict[str, Any]) -> _Setup:
 
 def _check_options(options: dict[str, Any]) -> None:
     """Refuse keywords that magnify_raster does not take or that the batch sets."""
-    known = set(inspect.signature(magnify_raster).parameters) - set(_BATCH_KEYS) - {"model"}
-    unknown = sorted(set(options) - known)
+    unknown = sorted(set(options) - _RASTER_OPTIONS)
     if unknown:
         raise ParameterError(
             f"The options of magnify_many must be keywords of magnify_raster, got {', '.join(unknown)}"
