@@ -200,9 +200,12 @@ def _magnify_batch(ctx, paths, output_dir, name_template, model, run, quiet):
     from ..pipeline.batch import DEFAULT_NAME, magnify_many, summary_table
     from .progress import library_output, progress_bars
 
+    # On a terminal the bar's line is cleared first; the bar redraws below the error.
+    clear = "\r\x1b[K" if not quiet and click.get_text_stream("stderr").isatty() else ""
+
     def on_item(item):
         if item.status == "failed":
-            click.echo(f"geosr: error: {item.source}: {item.error}", err=True)
+            click.echo(f"{clear}geosr: error: {item.source}: {item.error}", err=True)
 
     with library_output(quiet), progress_bars("magnify", quiet, unit="files") as bar:
         items = magnify_many(paths, output_dir, model, name=name_template or DEFAULT_NAME,
