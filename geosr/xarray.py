@@ -109,10 +109,36 @@ def _check_regular(da: Any, dim: str) -> None:
         )
 
 
+def _stored_transform(da: Any, dims: tuple[str, str]) -> Any:
+    """The GeoTransform rioxarray stored (``open_rasterio`` keeps the file's), if the coordinates fit it.
+
+    Rebuilding the transform from the coordinates rounds its last digits;
+    the stored one is the file's own, and is used while the coordinates are
+    still its pixel centres (not after a slice, for example).
+    """
+    from affine import Affine
+
+    mapping = da.coords.get(da.rio.grid_mapping)
+    text = mapping.attrs.get("GeoTransform") if mapping is not None else None
+    try:
+        t = Affine.from_gdal(*map(float, str(text).split()))
+    except (TypeError, ValueError):
+        return None
+    if t.b != 0 or t.d != 0:
+        return None
+    y, x = (np.asarray(da[d].values, dtype=np.float64) for d in dims)
+    fits_x = np.allclose(x, t.c + (np.arange(x.size) + 0.5) * t.a, rtol=0, atol=1e-6 * abs(t.a))
+    fits_y = np.allclose(y, t.f + (np.arange(y.size) + 0.5) * t.e, rtol=0, atol=1e-6 * abs(t.e))
+    return t if fits_x and fits_y else None
+
+
 def _transform(da: Any, dims: tuple[str, str]) -> Any:
-    """The DataArray's geotransform from its coordinates, checked to be north-up."""
+    """The DataArray's geotransform (stored, or from its coordinates), checked to be north-up."""
     for dim in dims:
         _check_regular(da, dim)
+    stored = _stored_transform(da, dims)
+    if stored is not None:
+        return stored
     try:
         transform = da.rio.transform(recalc=True)
     except Exception as exc:  # rioxarray raises several types for irregular coordinates

@@ -91,7 +91,7 @@ def test_to_raster_writes_magnify_raster_grid_and_tags(tmp_path):
     dst = reference(tmp_path, src, chunk_size=64)
     out = magnify(rioxarray.open_rasterio(src, chunks={"x": 64, "y": 64}), 2, chunk_size=64)
     written = tmp_path / "xarray-x2.tif"
-    out.rio.to_raster(written)
+    out.rio.to_raster(written, recalc_transform=False)
     with rasterio.open(dst) as ref, rasterio.open(written) as got:
         assert got.transform == ref.transform and got.crs == ref.crs
         assert got.shape == ref.shape and got.dtypes == ref.dtypes and got.nodata == ref.nodata
@@ -189,6 +189,23 @@ def test_bundled_rgb_with_spectral_guard(tmp_path):
     dst = reference(tmp_path, src, chunk_size=100)
     out = magnify(rioxarray.open_rasterio(src, chunks={"x": 100, "y": 100}), 2, chunk_size=100)
     assert out.attrs["GEOSR_SPECTRAL_GUARD"] == "yes"
-    with rasterio.open(dst) as ref:
+    exact, rebuilt = tmp_path / "exact.tif", tmp_path / "rebuilt.tif"
+    out.rio.to_raster(exact, recalc_transform=False)
+    out.rio.to_raster(rebuilt)  # rioxarray's default rebuilds the transform from the coordinates
+    with rasterio.open(dst) as ref, rasterio.open(exact) as a, rasterio.open(rebuilt) as b:
         assert ref.tags()["GEOSR_SPECTRAL_GUARD"] == "yes"
         np.testing.assert_array_equal(out.values, ref.read())
+        # the file's own 300.04 m transform, halved, is kept to the last digit
+        assert a.transform == ref.transform and a.crs == ref.crs
+        assert b.transform.almost_equals(ref.transform, precision=1e-9)
+
+
+def test_a_slice_is_placed_by_its_coordinates(tmp_path):
+    src = write_tif(tmp_path / "src.tif", uint16_scene(), 0)
+    da = rioxarray.open_rasterio(src).isel(x=slice(10, 60), y=slice(5, 50))
+    out = magnify(da, 2)
+    # the window's own transform (rasterio) refined x2: the stored GeoTransform is stale here
+    window = rasterio.windows.Window(10, 5, 50, 45)
+    expected = rasterio.windows.transform(window, TRANSFORM) @ rasterio.Affine.scale(0.5)
+    assert out.rio.transform().almost_equals(expected, precision=1e-6)
+    assert out.shape == (2, 90, 100)
