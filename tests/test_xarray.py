@@ -209,3 +209,30 @@ def test_a_slice_is_placed_by_its_coordinates(tmp_path):
     expected = rasterio.windows.transform(window, TRANSFORM) @ rasterio.Affine.scale(0.5)
     assert out.rio.transform().almost_equals(expected, precision=1e-6)
     assert out.shape == (2, 90, 100)
+
+
+@pytest.mark.parametrize("option", ["consistency", "ensemble", "per-band models"])
+def test_options_equal_magnify_raster(tmp_path, option):
+    src = write_tif(tmp_path / "src.tif", float_scene(60, 70)[:2], np.nan)
+    opts = {"model": [geosr.default_model(2)] * 2} if option == "per-band models" else {option: True}
+    dst = reference(tmp_path, src, chunk_size=48, **opts)
+    out = magnify(rioxarray.open_rasterio(src, chunks={"x": 50, "y": 50}), 2, chunk_size=48, **opts)
+    with rasterio.open(dst) as ref:
+        expected, tags = ref.read(), ref.tags()
+    np.testing.assert_allclose(out.values, expected, rtol=1e-6, atol=1e-4, equal_nan=True)
+    for key in ("GEOSR_CONSISTENCY", "GEOSR_ENSEMBLE", "GEOSR_MODEL_SHA256", "GEOSR_SPECTRAL_GUARD"):
+        assert out.attrs[key] == tags[key], key
+
+
+def test_nothing_is_computed_until_asked():
+    from dask.callbacks import Callback
+
+    ran = []
+    da = xr.DataArray(dask.array.from_array(camera(40, 40)[None], chunks=(1, 20, 20)),
+                      dims=("band", "y", "x"),
+                      coords={"x": np.arange(40.0) * 30 + 15, "y": 1200 - np.arange(40.0) * 30 - 15})
+    with Callback(pretask=lambda key, dsk, state: ran.append(key)):
+        out = magnify(da.rio.write_crs(CRS), 2, chunk_size=20)
+        assert ran == []  # magnify only builds the graph
+        out.isel(x=slice(0, 10), y=slice(0, 10)).compute()
+    assert ran  # computing a corner runs tasks
