@@ -27,7 +27,7 @@ from .core.features import FEATURE_RADIUS
 from .core.guided import GuidedRegression
 from .core.model import CoupledDictionary
 from .core.params import check_params, header_params, model_sha256
-from .errors import ModelError, ParameterError
+from .errors import DestinationError, ModelError, ParameterError
 
 if TYPE_CHECKING:
     from importlib.resources.abc import Traversable
@@ -64,6 +64,8 @@ def save_models(
     path: str | os.PathLike,
     models: Sequence[CoupledDictionary],
     band_names: Sequence[str] | None = None,
+    *,
+    overwrite: bool = True,
 ) -> None:
     """Write one shared model or one model per band to an ``.npz`` file.
 
@@ -79,6 +81,9 @@ def save_models(
         All fitted, all at one scale.
     band_names : sequence of str, optional
         One name per model, kept in the header.
+    overwrite : bool
+        Replace an existing file; without it an existing ``path`` is refused
+        (DestinationError), atomically.
     """
     models = list(models)
     if not models:
@@ -106,11 +111,16 @@ def save_models(
         "scale": scales.pop(),
         "models": entries,
     }
-    _write_npz(path, arrays, header)
+    _write_npz(path, arrays, header, overwrite)
 
 
-def _write_npz(path, arrays, header):
-    """Write arrays and a JSON header to a temporary file, then rename it into place."""
+def _write_npz(path, arrays, header, overwrite=True):
+    """Write arrays and a JSON header to a temporary file, then move it into place.
+
+    Without ``overwrite`` the move refuses an existing file atomically (a
+    hard link of the temporary, which fails when the name exists), so two
+    runs writing one model file never silently replace each other.
+    """
     arrays = dict(arrays)
     arrays["header"] = np.array(json.dumps(header, sort_keys=True))
     path = os.fspath(path)
@@ -123,11 +133,36 @@ def _write_npz(path, arrays, header):
         umask = os.umask(0)
         os.umask(umask)
         os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, path)
+        if overwrite:
+            os.replace(tmp, path)
+        else:
+            _publish_new(tmp, path)
     except BaseException:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
+
+
+def _publish_new(tmp, path):
+    """Move ``tmp`` to ``path`` only if ``path`` does not exist (atomic where links work)."""
+    try:
+        os.link(tmp, path)
+    except FileExistsError:
+        raise DestinationError(
+            f"The model file {path!r} must not exist already, got a file that appeared while this "
+            "run was writing (another run writing the same file?); use --overwrite to replace it"
+        ) from None
+    except OSError:  # no hard links on this file system: reserve the name, then rename
+        try:
+            os.close(os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o666))
+        except FileExistsError:
+            raise DestinationError(
+                f"The model file {path!r} must not exist already, got an existing file; "
+                "use --overwrite to replace it"
+            ) from None
+        os.replace(tmp, path)
+        return
+    os.unlink(tmp)
 
 
 def load_models(path: str | os.PathLike) -> list[CoupledDictionary]:
@@ -433,6 +468,8 @@ def save_guided_model(
     model: GuidedRegression,
     band_names: Sequence[str] | None = None,
     training: dict[str, Any] | None = None,
+    *,
+    overwrite: bool = True,
 ) -> None:
     """Write a fitted guided model to an ``.npz`` file (arrays and a JSON header).
 
@@ -445,6 +482,8 @@ def save_guided_model(
         One name per target band, kept in the header.
     training : dict, optional
         Provenance (source and guide files with their sha256 and bands).
+    overwrite : bool
+        Replace an existing file (see :func:`save_models`).
     """
     if not isinstance(model, GuidedRegression) or not hasattr(model, "coef_"):
         raise ParameterError("The 'model' parameter must be a fitted GuidedRegression")
@@ -463,7 +502,7 @@ def save_guided_model(
         "band_names": None if band_names is None else [str(n) for n in band_names],
         "training": dict(training or {}),
     }
-    _write_npz(path, model.to_arrays(), header)
+    _write_npz(path, model.to_arrays(), header, overwrite)
 
 
 def load_guided_model(path: str | os.PathLike) -> GuidedRegression:

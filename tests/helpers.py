@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import os
 from pathlib import Path
+from xml.sax.saxutils import escape
 
 import numpy as np
 
@@ -91,3 +92,53 @@ class BicubicContractModel:
         hr = np.repeat(np.repeat(v, self.scale, 0), self.scale, 1)
         out[~hr] = np.nan
         return out
+
+
+def write_vrt(vrt, member):
+    """A GDAL VRT at ``vrt`` that reads every band of the raster ``member`` (relative to the VRT)."""
+    import rasterio
+
+    with rasterio.open(member) as ds:
+        gt = ", ".join(repr(v) for v in ds.transform.to_gdal())
+        srs = ds.crs.to_wkt() if ds.crs else ""
+        bands = "".join(
+            f'<VRTRasterBand dataType="{_GDAL_TYPES[ds.dtypes[b - 1]]}" band="{b}"><SimpleSource>'
+            f'<SourceFilename relativeToVRT="1">{os.path.relpath(member, os.path.dirname(vrt))}'
+            f"</SourceFilename><SourceBand>{b}</SourceBand></SimpleSource></VRTRasterBand>"
+            for b in ds.indexes
+        )
+        text = (f'<VRTDataset rasterXSize="{ds.width}" rasterYSize="{ds.height}">'
+                f"<SRS>{escape(srs)}</SRS><GeoTransform>{gt}</GeoTransform>{bands}</VRTDataset>")
+    Path(vrt).write_text(text)
+    return Path(vrt)
+
+
+def add_sidecars(path):
+    """Give the GeoTIFF ``path`` an external mask (.msk), overviews (.ovr) and a .aux.xml."""
+    import rasterio
+    from rasterio.enums import Resampling
+
+    with rasterio.Env(GDAL_TIFF_INTERNAL_MASK=False):
+        with rasterio.open(path, "r+") as ds:
+            ds.write_mask(np.full((ds.height, ds.width), 255, np.uint8))
+    with rasterio.Env(TIFF_USE_OVR=True), rasterio.open(path, "r+") as ds:
+        ds.build_overviews([2], Resampling.nearest)
+    Path(str(path) + ".aux.xml").write_text('<PAMDataset><Metadata><MDI key="NOTE">x</MDI></Metadata></PAMDataset>')
+    return [Path(str(path) + s) for s in (".msk", ".ovr", ".aux.xml")]
+
+
+_GDAL_TYPES = {"uint8": "Byte", "int8": "Int8", "uint16": "UInt16", "int16": "Int16", "uint32": "UInt32",
+               "int32": "Int32", "float32": "Float32", "float64": "Float64"}
+
+
+def vrt_with_band_nodata(member, vrt, values):
+    """A VRT at ``vrt`` over the raster ``member`` whose bands declare their own nodata ``values``."""
+    import rasterio.shutil
+
+    rasterio.shutil.copy(member, vrt, driver="VRT")
+    text = Path(vrt).read_text()
+    for band, value in enumerate(values, start=1):
+        tag = f'band="{band}">'
+        text = text.replace(tag, f"{tag}\n    <NoDataValue>{value}</NoDataValue>", 1)
+    Path(vrt).write_text(text)
+    return vrt

@@ -90,3 +90,18 @@ def test_no_geosr_message_advises_unpickling():
                     text = fh.read()
                 assert "allow_pickle=True" not in text, name
                 assert "allow_pickle=" not in text.replace("allow_pickle=False", ""), name
+
+
+# --- a model file is never replaced without overwrite, even by a run that started later
+def test_save_without_overwrite_refuses_an_existing_file_and_keeps_it(tmp_path, tiny_model):
+    from geosr.errors import DestinationError
+    from geosr.modelfile import save_models
+
+    path = tmp_path / "m.npz"
+    path.write_bytes(b"another run's model")
+    with pytest.raises(DestinationError, match="must not exist already"):
+        save_models(path, [tiny_model], overwrite=False)
+    assert path.read_bytes() == b"another run's model"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["m.npz"]  # no temporary left
+    save_models(path, [tiny_model], overwrite=True)
+    assert path.read_bytes()[:2] == b"PK"  # an .npz (zip) archive replaced it

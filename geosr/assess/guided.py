@@ -362,7 +362,8 @@ def assess_guided(reference, report_dir, scale, *, guide, guide_bands=None, mode
     g = _read_guides(paths, grid, guide_bands)
     s = _derive_scale(scale, g.ratio)
     deg_name, sigma_used = _check_degradation(s, degradation, sigma)
-    folder = prepare_destination(report_dir, overwrite)
+    model_file = [os.fspath(model)] if isinstance(model, (str, os.PathLike)) else []
+    folder = prepare_destination(report_dir, overwrite, [reference, *paths, *model_file])
     ref = _crop_square(_read_reference(reference, bands, s), s)
     rows, cols = ref.data.shape[1:]
     g_ref, gv_ref = _guide_on_reference(g, rows, cols, deg_name, sigma_used)
@@ -400,6 +401,6 @@ def assess_guided(reference, report_dir, scale, *, guide, guide_bands=None, mode
     result["protocol"] = _protocol(ref, low, s, deg_name, sigma_used, data_range)
     result["protocol"]["mask"] += " AND the guide valid on the reference's grid"
     write_guided_report(folder, result, ref.data, outputs, valid, crop_size, ref.band_names,
-                        g_ref.mean(axis=0))
+                        g_ref.mean(axis=0), overwrite)
     log.info("wrote %s", folder)
     return result

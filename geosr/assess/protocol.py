@@ -371,6 +371,11 @@ def _assess_guided(reference, report_dir, scale, kw):
 # --------------------------------------------------------------------------
 
 
+def _model_file(model):
+    """The model file the run reads, as a list (empty for model objects)."""
+    return [os.fspath(model)] if isinstance(model, (str, os.PathLike)) else []
+
+
 def assess_raster(
     reference: str | os.PathLike[str],
     report_dir: str | os.PathLike[str],
@@ -493,7 +498,7 @@ def assess_raster(
             f"runs in memory in this process, got workers={workers!r}, scheduler={scheduler!r}"
         )
     crop_size = check_int(crop_size, "crop_size", 8)
-    folder = prepare_destination(report_dir, overwrite)
+    folder = prepare_destination(report_dir, overwrite, [reference] + _model_file(model))
     ref = _read_reference(reference, bands, s)
     n_bands, rows, cols = ref.data.shape
     log.info("degrading %d band(s) of %d x %d by %d (%s)", n_bands, rows, cols, s, deg_name)
@@ -513,6 +518,6 @@ def assess_raster(
                        "count": len(choice.models), "consistency": bool(consistency),
                        "ensemble": bool(ensemble), "spectral_guard": guarded}
     result["protocol"] = _protocol(ref, low, s, deg_name, sigma_used, data_range)
-    write_report(folder, result, ref.data, outputs, low.eval_valid, crop_size, ref.band_names)
+    write_report(folder, result, ref.data, outputs, low.eval_valid, crop_size, ref.band_names, overwrite)
     log.info("wrote %s", folder)
     return result

@@ -7,11 +7,13 @@ Agg canvas, so no matplotlib backend is selected or changed.
 from __future__ import annotations
 
 import contextlib
+import errno
 import json
 import math
 import os
 import shutil
 import tempfile
+import warnings
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -198,39 +200,156 @@ def _write_gain_chart(folder, result, band_names, method="geosr"):
     return ["psnr_gain.png"]
 
 
-def prepare_destination(report_dir, overwrite):
-    report_dir = os.path.abspath(os.fspath(report_dir))
+#: Files of every report besides the figures (whose names metrics.json lists).
+REPORT_FILES = ("metrics.json", "report.md")
+
+#: metrics.json larger than this is not geosr's (a report's is a few KiB).
+_METRICS_MAX_BYTES = 16 * 2**20
+
+
+def _report_files(folder):
+    """The names geosr's report writes in ``folder``, from its metrics.json; None if it is not geosr's."""
+    path = os.path.join(folder, "metrics.json")
+    try:
+        if not os.path.isfile(path) or os.path.getsize(path) > _METRICS_MAX_BYTES:
+            return None
+        with open(path, encoding="utf-8") as fh:
+            data = json.load(fh)
+    except (OSError, ValueError):
+        return None
+    if not (isinstance(data, dict) and isinstance(data.get("geosr_version"), str)
+            and isinstance(data.get("protocol"), dict)):
+        return None
+    figures = data.get("figures", [])
+    if not isinstance(figures, list) or not all(
+        isinstance(f, str) and f == os.path.basename(f) and f not in ("", ".", "..") for f in figures
+    ):
+        return None
+    return set(REPORT_FILES) | set(figures)
+
+
+def _is_report(folder):
+    """Whether ``folder`` is recognisably a geosr report: geosr's metrics.json, and only the report's files."""
+    allowed = _report_files(folder)
+    if allowed is None:
+        return False
+    with os.scandir(folder) as entries:
+        return all(e.name in allowed and e.is_file(follow_symlinks=False) for e in entries)
+
+
+def _refuse_reads_inside(folder, reads, shown):
+    """Refuse to replace a folder that holds a file the run reads."""
+    from ..raster.io import dataset_files
+
+    inside = os.path.realpath(folder) + os.sep
+    for r in reads:
+        for f in dataset_files(r):
+            if os.path.realpath(f).startswith(inside):
+                raise DestinationError(
+                    f"The 'report_dir' parameter must not hold a file the run reads, got {shown!r} "
+                    f"holding {f!r}; name another folder"
+                )
+
+
+def prepare_destination(report_dir, overwrite, reads=()):
+    """Check the report folder before any work; return its absolute path.
+
+    A new folder, an empty one, or (with ``overwrite``) a folder that is
+    recognisably a geosr report (:data:`REPORT_FILES` with geosr's
+    metrics.json, and the figures it lists; nothing else) is accepted. Any
+    other folder is refused, as is one holding a file of ``reads``: geosr
+    never removes a file it did not write. A symbolic link to a folder is
+    followed: the report replaces the folder it points to, the link stays.
+
+    Raises
+    ------
+    DestinationError
+    """
+    shown = os.fspath(report_dir)
+    report_dir = os.path.abspath(shown)
+    if os.path.islink(report_dir):
+        report_dir = os.path.realpath(report_dir)
     if os.path.exists(report_dir):
         if not os.path.isdir(report_dir):
             raise DestinationError(
                 f"The 'report_dir' parameter must be a folder, got an existing file {report_dir!r}"
             )
-        if os.listdir(report_dir) and not overwrite:
-            raise DestinationError(
-                f"The 'report_dir' parameter must be an empty or new folder (or pass "
-                f"overwrite=True), got a non-empty folder {report_dir!r}"
-            )
+        if os.listdir(report_dir):
+            if not overwrite:
+                raise DestinationError(
+                    f"The 'report_dir' parameter must be an empty or new folder (or pass "
+                    f"overwrite=True), got a non-empty folder {report_dir!r}"
+                )
+            if not _is_report(report_dir):
+                raise DestinationError(_not_a_report(shown))
+            _refuse_reads_inside(report_dir, reads, shown)
     parent = os.path.dirname(report_dir)
     if not os.path.isdir(parent):
         raise DestinationError(f"The 'report_dir' parameter must be in an existing folder, got {report_dir!r}")
     return report_dir
 
 
-def _publish(tmp, report_dir):
-    """Move the finished temp folder into place, replacing an old report."""
-    old = None
-    if os.path.exists(report_dir):
-        old = tempfile.mkdtemp(prefix=".geosr-report-old-", dir=os.path.dirname(report_dir))
-        os.rmdir(old)
-        os.rename(report_dir, old)
+def _not_a_report(shown):
+    return (
+        f"The 'report_dir' parameter must be a new or empty folder, or a geosr report folder to "
+        f"replace (geosr's metrics.json and the report's files only), got {shown!r} holding other "
+        "files; geosr never removes files it did not write, so name another folder"
+    )
+
+
+def _umask():
+    """The process's umask (read from /proc where it can be, so it is never changed)."""
+    with contextlib.suppress(OSError, ValueError):
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _publish(tmp, report_dir, overwrite=True):
+    """Move the finished temp folder into place, replacing an old report.
+
+    A missing or empty ``report_dir`` is replaced in one rename. A full one
+    is checked again (it may have changed during the run), moved aside,
+    replaced, and then only the old report's own files are removed.
+    """
+    os.chmod(tmp, 0o777 & ~_umask())  # mkdtemp makes it private; a report folder is an ordinary folder
     try:
         os.rename(tmp, report_dir)
+        return
+    except OSError as exc:
+        if not os.path.isdir(report_dir) or exc.errno not in (errno.ENOTEMPTY, errno.EEXIST):
+            raise DestinationError(f"The report folder {report_dir!r} must be writable, got: {exc}") from None
+    if not overwrite:
+        raise DestinationError(
+            f"The 'report_dir' parameter must be an empty or new folder, got {report_dir!r} filled while "
+            "this run was working (another run?); pass overwrite=True (--overwrite) to replace it"
+        )
+    old = tempfile.mkdtemp(prefix=".geosr-report-old-", dir=os.path.dirname(report_dir))
+    os.rmdir(old)
+    os.rename(report_dir, old)
+    try:
+        if not _is_report(old):
+            raise DestinationError(_not_a_report(report_dir))
+        os.rename(tmp, report_dir)
     except BaseException:
-        if old is not None:
-            os.rename(old, report_dir)
+        os.rename(old, report_dir)
         raise
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
+    _remove_report(old)
+
+
+def _remove_report(folder):
+    """Remove an old report's own files, then its folder if nothing else is left."""
+    for name in _report_files(folder) or ():
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(os.path.join(folder, name))
+    try:
+        os.rmdir(folder)
+    except OSError:
+        warnings.warn(f"geosr left {folder!r}: it holds files geosr did not write", stacklevel=2)
 
 
 def write_report(
@@ -241,11 +360,14 @@ def write_report(
     valid: np.ndarray,
     crop_size: int,
     band_names: Sequence[str],
+    overwrite: bool = True,
 ) -> None:
     """Write metrics.json, report.md and the figures into ``report_dir``.
 
     Everything goes into a temporary folder beside ``report_dir`` that is
     renamed into place at the end, so a failed run leaves no half report.
+    Without ``overwrite`` a folder filled by someone else during the run is
+    refused (see :func:`_publish`).
     ``result`` gains ``figures`` and ``protocol["figure_window"]``.
     """
     def figures(tmp, window):
@@ -253,10 +375,10 @@ def write_report(
                 + _write_gain_chart(tmp, result, band_names))
 
     _write_all(report_dir, result, ref, valid, crop_size, figures,
-               lambda path, names: _write_markdown(path, result, band_names, names))
+               lambda path, names: _write_markdown(path, result, band_names, names), overwrite)
 
 
-def _write_all(report_dir, result, ref, valid, crop_size, figures, markdown):
+def _write_all(report_dir, result, ref, valid, crop_size, figures, markdown, overwrite=True):
     """The figures (``figures(folder, window)``), metrics.json and report.md, atomically."""
     rows, cols = ref.shape[1:]
     size = int(min(crop_size, rows, cols))
@@ -269,7 +391,7 @@ def _write_all(report_dir, result, ref, valid, crop_size, figures, markdown):
         with open(os.path.join(tmp, "metrics.json"), "w", encoding="utf-8") as fh:
             json.dump(result, fh, indent=2, allow_nan=True)
         markdown(os.path.join(tmp, "report.md"), names)
-        _publish(tmp, report_dir)
+        _publish(tmp, report_dir, overwrite)
     except BaseException:
         with contextlib.suppress(OSError):
             shutil.rmtree(tmp)
@@ -388,6 +510,7 @@ def write_guided_report(
     crop_size: int,
     band_names: Sequence[str],
     guide: np.ndarray,
+    overwrite: bool = True,
 ) -> None:
     """Write the report of a guided assessment, as :func:`write_report` does.
 
@@ -402,4 +525,4 @@ def write_guided_report(
                 + _write_gain_chart(tmp, result, band_names, "guided"))
 
     _write_all(report_dir, result, ref, valid, crop_size, figures,
-               lambda path, names: _write_guided_markdown(path, result, band_names, names))
+               lambda path, names: _write_guided_markdown(path, result, band_names, names), overwrite)

@@ -162,6 +162,7 @@ def train(ctx, references, output, scale, bands, guides, guide_bands, shared, me
             scheduler=scheduler,
             random_state=random_state,
             output=output,
+            overwrite=overwrite,
             progress=bar,
             **model_params,
         )

@@ -662,13 +662,7 @@ def consistency_error(
     s = check_scale(scale)
     taps, start = degradation_taps(s, degradation, sigma)  # validates both
     low = _as_bands(low_res, "low_res")
-    out = _as_bands(output, "output")
-    expected = (low.shape[0], s * low.shape[1], s * low.shape[2])
-    if out.shape != expected:
-        raise InputError(
-            f"The 'output' parameter must have shape {expected} (the low-res shape "
-            f"{low.shape} magnified by {s}), got {out.shape}"
-        )
+    out = _check_magnified(_as_bands(output, "output"), low, s, "output", "low-res")
     mask = _as_mask(valid, low.shape)
     out_mask = np.repeat(np.repeat(mask, s, axis=1), s, axis=2)
     _check_finite(low, mask, "low_res")
@@ -742,18 +736,23 @@ class _QnrInputs(NamedTuple):
     block: int
 
 
+def _check_magnified(fine, coarse, s, name, coarse_name):
+    """``fine`` must have ``coarse``'s shape magnified by ``s``."""
+    expected = (coarse.shape[0], s * coarse.shape[1], s * coarse.shape[2])
+    if fine.shape != expected:
+        raise InputError(
+            f"The {name!r} parameter must have shape {expected} (the {coarse_name} shape "
+            f"{coarse.shape} magnified by {s}), got {fine.shape}"
+        )
+    return fine
+
+
 def _qnr_inputs(fused, coarse, scale, valid, block):
     """Check the fused/coarse pair shared by D_lambda, D_s and QNR."""
     s = check_scale(scale)
     k = check_int(block, "block", 2)
-    f = _as_bands(fused, "fused")
     m = _as_bands(coarse, "coarse")
-    expected = (m.shape[0], s * m.shape[1], s * m.shape[2])
-    if f.shape != expected:
-        raise InputError(
-            f"The 'fused' parameter must have shape {expected} (the coarse shape "
-            f"{m.shape} magnified by {s}), got {f.shape}"
-        )
+    f = _check_magnified(_as_bands(fused, "fused"), m, s, "fused", "coarse")
     if m.shape[1] < k or m.shape[2] < k:
         raise InputError(
             f"The 'coarse' parameter must be at least {k} x {k} pixels for QNR with "

@@ -470,5 +470,5 @@ def train_guided(
     }
     warn_weak_correlation(model, names)
     if output is not None:
-        save_guided_model(output, model, names, model.training_)
+        save_guided_model(output, model, names, model.training_, overwrite=overwrite)
     return model

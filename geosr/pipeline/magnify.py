@@ -24,7 +24,7 @@ import numpy as np
 
 from .._validation import check_bool, check_int, check_scale
 from ..enums import Method
-from ..errors import GeoreferencingWarning, InputError, ParameterError
+from ..errors import DestinationError, GeoreferencingWarning, InputError, ParameterError
 from ..parallel.schedule import ProgressCallback, SchedulerSpec, resolve_scheduler, run_tasks
 from ..raster.blocks import BlockPlan, ResidualStats, magnify_one_block
 from ..raster.io import (
@@ -168,16 +168,24 @@ def _output_dtype(info: SourceInfo, bands: Sequence[int]) -> str:
     return str(np.result_type(*[info.dtypes[b - 1] for b in bands]))
 
 
-def _check_destinations(info, dst, count, scale, dtype, opts, reads=None):
+def _check_destinations(info, dst, count, scale, dtype, opts, reads=None, models=()):
     """The output path and the STAC path (or None), checked; the size refused early.
 
-    ``reads`` lists every file the run reads (the source by default).
+    ``reads`` lists the rasters the run reads (the source by default, then
+    the guides); each one's own files (VRT members, mask, overview and
+    metadata sidecars) are never written, nor the ``models`` files.
     """
     reads = list(reads or [info.path])
-    dst_path = check_destination(dst, reads, opts.overwrite)
+    dst_path = check_destination(dst, reads, opts.overwrite, reads=models, sidecars=(".aux.xml",))
     stac_dst = None
     if opts.stac:
-        stac_dst = check_destination(stac_path(dst_path), [*reads, dst_path], opts.overwrite, name="stac")
+        stac = stac_path(dst_path)
+        if os.path.abspath(stac) == os.fspath(dst_path):
+            raise DestinationError(
+                f"The STAC sidecar {str(stac)!r} must differ from the destination, got the destination "
+                "itself (the sidecar is DST with '.json'); give DST a raster extension such as .tif"
+            )
+        stac_dst = check_destination(stac, reads, opts.overwrite, name="stac", reads=[*models, dst_path])
     out_bytes = scale * scale * info.width * info.height * count * np.dtype(dtype).itemsize
     if out_bytes > opts.max_output_bytes:
         raise InputError(
@@ -190,6 +198,11 @@ def _check_destinations(info, dst, count, scale, dtype, opts, reads=None):
     if opts.check_free_space:
         _check_free_space(dst_path.parent, out_bytes * (2 if opts.cog else 1))
     return dst_path, stac_dst
+
+
+def _model_files(model):
+    """The model file a run reads, as a list (empty for model objects or the shipped model)."""
+    return [os.fspath(model)] if isinstance(model, (str, os.PathLike)) else []
 
 
 def _self_train(info, magnified, scale, opts):
@@ -220,7 +233,7 @@ def _plan(src, dst, model, bands, opts):
         models, scale = choice.models, choice.scale
     elif scale is None:
         raise ParameterError("The 'scale' parameter must be given when no model is, got None")
-    dests = _check_destinations(info, dst, len(split.selected), scale, dtype, opts)
+    dests = _check_destinations(info, dst, len(split.selected), scale, dtype, opts, models=_model_files(model))
     if models is None:
         models = _self_train(info, split.magnified, scale, opts)
     plan = plan_blocks(info, split, list(models), scale, dtype=dtype, chunk_size=opts.chunk_size,
@@ -444,7 +457,7 @@ def _write_outputs(plan, output, dests, opts, run=None, sources=()):
             temps.discard(tmp)
         if stac_dst is not None:
             _write_sidecar(temps, stac_dst, lambda: _stac_item(plan, output, dst_path, opts.cog, sources))
-        temps.commit()
+        temps.commit(opts.overwrite)
     return residuals
 
 
@@ -509,8 +522,8 @@ def _plan_guided(src, dst, model, bands, guide, guide_bands, opts):
         where = {"degradation": "bicubic", "sigma": None, **(opts.training or {})}
     bp = guided_block_plan(single.block_plan, where["degradation"], where["sigma"])
     check_chunk_size(opts.chunk_size, bp.halo)
-    reads = [info.path, *spec.paths] + ([os.fspath(model)] if isinstance(model, (str, os.PathLike)) else [])
-    dests = _check_destinations(info, dst, len(split.selected), spec.scale, dtype, opts, reads)
+    dests = _check_destinations(info, dst, len(split.selected), spec.scale, dtype, opts, [info.path, *spec.paths],
+                                _model_files(model))
     guided_model = given if given is not None else _learn_guided_model(info, bp, spec, opts)
     names = [info.descriptions[b - 1] or f"band {b}" for b in split.magnified]
     warn_weak_correlation(guided_model, names)

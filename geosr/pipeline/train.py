@@ -158,6 +158,7 @@ def train_from_rasters(
     retries: int = 2,
     random_state: int | None = _DEFAULTS["random_state"],
     output: str | os.PathLike[str] | None = None,
+    overwrite: bool = True,
     progress: ProgressCallback | None = None,
     **model_params: Any,
 ) -> list[Any]:
@@ -188,6 +189,9 @@ def train_from_rasters(
         Seed of the sampling and of the models.
     output : str or os.PathLike, optional
         Also save the models there (``geosr.modelfile.save_models``).
+    overwrite : bool
+        Replace an existing ``output`` (refused otherwise, also when another
+        run writes it meanwhile).
     progress : callable, optional
         Called as ``progress(done, total)`` with the number of windows read:
         ``(0, total)`` before the first, then once per window. Messages go
@@ -214,7 +218,7 @@ def train_from_rasters(
     spec = scheduler if isinstance(scheduler, SchedulerSpec) else resolve_scheduler(scheduler, workers)
     chunk = check_chunk_size(chunk_size)
     if output is not None:
-        output = check_destination(output, paths, overwrite=True, name="output")
+        output = check_destination(output, paths, overwrite=overwrite, name="output")
     params = _model_params(scale, method, max_samples, random_state, model_params)
 
     infos = [inspect_source(p) for p in paths]
@@ -227,5 +231,5 @@ def train_from_rasters(
     names = ["shared"] if shared else [first.descriptions[b - 1] or f"band{b}" for b in selections[0]]
     _fit(models, pooled, names, max_samples)
     if output is not None:
-        save_models(output, models, band_names=names)
+        save_models(output, models, band_names=names, overwrite=overwrite)
     return models

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import errno
+import hashlib
 import logging
 import os
 import re
@@ -37,8 +39,10 @@ __all__ = [
     "parse_bands",
     "check_bands",
     "check_destination",
+    "dataset_files",
     "check_free_space",
     "TempFiles",
+    "publish",
     "temp_path",
     "remove_stale_temps",
 ]
@@ -47,6 +51,8 @@ __all__ = [
 SUPPORTED_DTYPES = ("uint8", "int8", "uint16", "int16", "uint32", "int32", "float32", "float64")
 
 _TEMP_TAG = ".geosr-tmp-"
+
+log = logging.getLogger(__name__)
 
 
 def _is_local_path(path):
@@ -481,18 +487,164 @@ def check_bands(bands, count):
     return tuple(int(b) for b in bands)
 
 
-def check_destination(dst, sources=(), overwrite=False, name="dst"):
-    """Check that ``dst`` can be written and is none of the ``sources``.
+#: Sidecar files GDAL reads beside a raster (masks, overviews, PAM metadata).
+_SIDECARS = (".msk", ".ovr", ".msk.ovr", ".aux.xml", ".ovr.aux.xml")
+
+#: VRTs opened while following the members of a VRT (a VRT of VRTs).
+_NESTED_VRT_LIMIT = 64
+
+
+def _local_file(text):
+    """The local file behind a path GDAL reads: itself, an archive, a subdataset's file, or None."""
+    if text.startswith("/vsi"):
+        parts = text.split("/", 2)[2].split("/")  # after '/vsizip/': the archive is the longest file prefix
+        for n in range(len(parts), 0, -1):
+            candidate = "/".join(parts[:n])
+            if candidate and os.path.isfile(candidate):
+                return os.path.abspath(candidate)
+        return None
+    if re.match(r"^[A-Za-z][A-Za-z0-9+.\-]*://", text):
+        return None
+    if not os.path.exists(text):
+        m = re.match(r'^[A-Za-z0-9_]+:"([^"]+)"', text)  # e.g. NETCDF:"f.nc":var
+        return os.path.abspath(m.group(1)) if m else os.path.abspath(text)
+    return os.path.abspath(text)
+
+
+def _gdal_file_list(text):
+    """GDAL's file list of a dataset (rasterio's ``files``), or [] when it does not open."""
+    try:
+        with warnings.catch_warnings(), rasterio.Env(CPL_DEBUG=False):
+            warnings.simplefilter("ignore")
+            with rasterio.open(text) as ds:
+                return list(ds.files)
+    except Exception:  # noqa: BLE001 - anything GDAL cannot open lists only itself
+        return []
+
+
+def dataset_files(path):
+    """Every local file that reading the raster ``path`` may read.
+
+    The dataset's own list (rasterio's ``DatasetReader.files``: the file, VRT
+    members, ``.msk``/``.ovr``/``.aux.xml`` sidecars), the sidecars of each
+    member that exist, and the members of nested VRTs. A ``/vsizip/`` or
+    ``/vsitar/`` path gives its archive, a subdataset name its file, a remote
+    path nothing; a file GDAL cannot open gives only itself.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+
+    Returns
+    -------
+    list of str
+        Absolute paths (symbolic links not resolved), ``path``'s own file first.
+    """
+    top = os.fspath(path)
+    files: list[str] = []
+    todo, opened = [top], 0
+    while todo:
+        current = todo.pop(0)
+        listed = [current]
+        if opened < _NESTED_VRT_LIMIT and (current == top or current.lower().endswith(".vrt")):
+            opened += 1
+            listed += _gdal_file_list(current)
+        for f in listed:
+            local = _local_file(f)
+            if local is None or local in files:
+                continue
+            files.append(local)
+            files += [c for c in (local + ext for ext in _SIDECARS) if os.path.isfile(c) and c not in files]
+            if local != _local_file(current) and local.lower().endswith(".vrt"):
+                todo.append(local)
+    return files
+
+
+def _identity(path):
+    """(resolved path, (device, inode) or None) of a file that may not exist."""
+    real = os.path.realpath(path)
+    try:
+        st = os.stat(path)
+    except (OSError, ValueError):
+        return real, None
+    return real, (st.st_dev, st.st_ino)
+
+
+def _same(a, b):
+    return a[0] == b[0] or (a[1] is not None and a[1] == b[1])
+
+
+def _sidecar_name(target):
+    return f"The sidecar {str(target)!r} that geosr writes beside the destination"
+
+
+def _refuse_read_files(what, targets, sources, reads):
+    """Refuse when a path the run writes is a file it reads (after links)."""
+    wanted = [(t, _identity(t)) for t in targets]
+    for n, src in enumerate(sources):
+        src_text = os.fspath(src)
+        files = dataset_files(src_text)
+        for i, f in enumerate(files):
+            ident = _identity(f)
+            for k, (target, t_ident) in enumerate(wanted):
+                if not _same(ident, t_ident):
+                    continue
+                who = what if k == 0 else _sidecar_name(target)
+                if i == 0 and n == 0 and k == 0:
+                    raise DestinationError(f"{who} must differ from the source, got the source itself")
+                got = f"the input {src_text!r} itself" if i == 0 else f"{f!r}, which the run reads for {src_text!r}"
+                raise DestinationError(f"{who} must differ from every file the run reads, got {got}")
+    for r in reads:
+        ident = _identity(os.fspath(r))
+        for k, (target, t_ident) in enumerate(wanted):
+            if _same(ident, t_ident):
+                who = what if k == 0 else _sidecar_name(target)
+                raise DestinationError(
+                    f"{who} must differ from every file the run reads, got {os.fspath(r)!r}, "
+                    "which the run reads"
+                )
+
+
+def _name_max(folder):
+    try:
+        return int(os.pathconf(folder, "PC_NAME_MAX"))
+    except (OSError, ValueError):
+        return 255
+
+
+def _name_fits(path):
+    """Whether ``path``'s file name is within its file system's limit (255 bytes on most)."""
+    return len(os.fsencode(Path(path).name)) <= _name_max(Path(path).parent)
+
+
+def _check_name_length(path, what):
+    limit = _name_max(path.parent)
+    size = len(os.fsencode(path.name))
+    if size > limit:
+        raise DestinationError(f"{what} must have a file name of at most {limit} bytes, got {size} bytes")
+
+
+def check_destination(dst, sources=(), overwrite=False, name="dst", *, reads=(), sidecars=()):
+    """Check that ``dst`` can be written and is none of the files the run reads.
 
     Parameters
     ----------
     dst : str or os.PathLike
-        A local file path.
+        A local file path (not a folder, not ending in ``/``).
     sources : sequence of str
-        Paths that must never be overwritten (compared after resolving
-        symbolic links and relative paths, and by inode).
+        Rasters the run reads; each one's files (:func:`dataset_files`) must
+        never be written. Compared after resolving symbolic links and relative
+        paths, and by device and inode (hard links). Refused even with
+        ``overwrite``.
     overwrite : bool
         Whether an existing ``dst`` may be replaced.
+    name : str
+        The parameter's name, for the messages (``"stac"`` names the STAC sidecar).
+    reads : sequence of str
+        Other files the run reads (model files), compared the same way.
+    sidecars : sequence of str
+        Suffixes of files written or replaced beside ``dst`` (``".aux.xml"``):
+        they must not be read files either, and must not exist without ``overwrite``.
 
     Returns
     -------
@@ -501,27 +653,29 @@ def check_destination(dst, sources=(), overwrite=False, name="dst"):
     """
     text = _check_path_type(dst, name)
     check_utf8_path(text, "The destination", DestinationError)
+    what = f"The STAC sidecar {text!r}" if name == "stac" else f"The destination {text!r}"
     if not _is_local_path(text):
-        raise DestinationError(f"The destination {text!r} must be a local file path, got a GDAL or URL path")
+        raise DestinationError(f"{what} must be a local file path, got a GDAL or URL path")
+    if text.endswith(("/", os.sep)) or os.path.basename(text) in (".", ".."):
+        raise DestinationError(f"{what} must be a file path, got a folder path (ending in '/', '.' or '..')")
     path = Path(os.path.abspath(text))
-    real = os.path.realpath(path)
-    for src in sources:
-        src = os.fspath(src)
-        same = os.path.realpath(src) == real
-        if not same and os.path.exists(src) and os.path.exists(path):
-            with contextlib.suppress(OSError):
-                same = os.path.samefile(src, path)
-        if same:
-            raise DestinationError(
-                f"The destination {text!r} must differ from the source, got the source itself"
-            )
-    if path.is_dir():
-        raise DestinationError(f"The destination {text!r} must be a file path, got a directory")
-    if (path.exists() or path.is_symlink()) and not overwrite:
+    _check_name_length(path, what)
+    sidecars = [s for s in sidecars if _name_fits(Path(str(path) + s))]  # longer names cannot exist
+    _refuse_read_files(what, [path, *(Path(str(path) + s) for s in sidecars)], sources, reads)
+    if os.path.isdir(path):
+        raise DestinationError(f"{what} must be a file path, got a directory")
+    if os.path.lexists(path) and not overwrite:
         raise DestinationError(
-            f"The destination {text!r} must not exist yet, got an existing file; "
+            f"{what} must not exist yet, got an existing file; "
             "pass overwrite=True (--overwrite) to replace it"
         )
+    for suffix in sidecars if not overwrite else ():
+        side = Path(str(path) + suffix)
+        if os.path.lexists(side):
+            raise DestinationError(
+                f"{what} must not have a sidecar yet, got an existing {str(side)!r} that would describe "
+                "the new file; remove it, or pass overwrite=True (--overwrite) to replace it"
+            )
     folder = path.parent
     if not folder.is_dir():
         raise DestinationError(f"The destination folder {str(folder)!r} must exist, got no such folder")
@@ -564,16 +718,34 @@ def _host():
     return re.sub(r"[^A-Za-z0-9]", "", socket.gethostname())[:32] or "host"
 
 
+#: Bytes of a temporary's name kept for the final name: what is left of 255
+#: after the dot, the tag, the longest host (32) and pid (10), the token (8),
+#: their separators and 16 for the suffix and a GDAL sidecar (".msk.ovr").
+_TEMP_STEM_BYTES = 255 - 1 - len(_TEMP_TAG) - 32 - 1 - 10 - 1 - 8 - 16
+
+
+def _temp_stem(name):
+    """``name``, or a shortened form of it (prefix + hash) that keeps temporaries under 255 bytes."""
+    raw = os.fsencode(name)
+    if len(raw) <= _TEMP_STEM_BYTES:
+        return name
+    digest = hashlib.sha256(raw).hexdigest()[:16]
+    head = raw[: _TEMP_STEM_BYTES - len(digest) - 1].decode("utf-8", "ignore")  # whole characters only
+    return f"{head}~{digest}"
+
+
 def temp_path(final, suffix=""):
     """A fresh temporary path beside ``final`` that names this process.
 
     The name is ``.<final name>.geosr-tmp-<host>-<pid>-<token><suffix>``, so
     :func:`remove_stale_temps` can tell a dead run's leftovers from a live
-    run's files.
+    run's files. A final name too long to leave room for the rest is
+    shortened to its first bytes and a hash of the whole name, so the
+    temporary stays within the 255-byte limit of file names.
     """
     final = Path(final)
     token = secrets.token_hex(4)
-    return final.parent / f".{final.name}{_TEMP_TAG}{_host()}-{os.getpid()}-{token}{suffix}"
+    return final.parent / f".{_temp_stem(final.name)}{_TEMP_TAG}{_host()}-{os.getpid()}-{token}{suffix}"
 
 
 def _pid_alive(pid):
@@ -597,7 +769,7 @@ def remove_stale_temps(final):
         The files removed.
     """
     final = Path(final)
-    prefix = f".{final.name}{_TEMP_TAG}{_host()}-"
+    prefix = f".{_temp_stem(final.name)}{_TEMP_TAG}{_host()}-"
     removed = []
     try:
         entries = list(final.parent.iterdir())
@@ -615,13 +787,99 @@ def remove_stale_temps(final):
     return removed
 
 
+#: errno values of file systems that do not support hard links.
+_NO_HARD_LINKS = {errno.EPERM, errno.ENOTSUP, errno.EOPNOTSUPP, errno.ENOSYS, errno.EMLINK, errno.EXDEV}
+
+
+def _reserve(final, suffix):
+    """A temporary path beside ``final``, created empty and exclusively (it never replaces a file)."""
+    for _ in range(64):
+        tmp = temp_path(final, suffix)
+        try:
+            os.close(os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666))
+        except FileExistsError:
+            continue
+        except OSError as exc:
+            raise DestinationError(
+                f"The destination folder {str(Path(final).parent)!r} must be writable, got an error "
+                f"creating a temporary file: {exc.strerror or exc}"
+            ) from None
+        return tmp
+    raise DestinationError(f"The destination folder {str(Path(final).parent)!r} must allow a new temporary file")
+
+
+def _appeared(final):
+    return DestinationError(
+        f"The destination {str(final)!r} must not exist yet, got a file that appeared while this run "
+        "was writing (another run writing the same file?); pass overwrite=True (--overwrite) to replace it"
+    )
+
+
+def _rename_error(final, exc):
+    return DestinationError(
+        f"The destination {str(final)!r} must be writable, got an error when "
+        f"renaming the finished file into place: {exc}"
+    )
+
+
+def publish(tmp, final, overwrite=False):
+    """Move the finished file ``tmp`` to ``final`` in one step.
+
+    With ``overwrite``: :func:`os.replace`. Without: :func:`os.link` then
+    unlink of ``tmp``, which fails with ``EEXIST`` (so it refuses) when
+    ``final`` exists, even if another process created it a moment ago. On
+    file systems without hard links (FAT, some network and FUSE mounts) the
+    name is reserved with an exclusive create (``O_CREAT | O_EXCL``, which is
+    just as atomic) and ``tmp`` renamed over the reservation; for that
+    instant ``final`` exists as an empty file.
+
+    Raises
+    ------
+    DestinationError
+        ``final`` exists (without ``overwrite``) or cannot be written.
+    """
+    if overwrite:
+        try:
+            os.replace(tmp, final)
+        except OSError as exc:
+            raise _rename_error(final, exc) from None
+        return
+    try:
+        os.link(tmp, final)
+    except FileExistsError:
+        raise _appeared(final) from None
+    except OSError as exc:
+        if exc.errno not in _NO_HARD_LINKS:
+            raise _rename_error(final, exc) from None
+        _publish_by_reservation(tmp, final)
+        return
+    with contextlib.suppress(OSError):
+        os.unlink(tmp)
+
+
+def _publish_by_reservation(tmp, final):
+    try:
+        os.close(os.open(final, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
+    except FileExistsError:
+        raise _appeared(final) from None
+    except OSError as exc:
+        raise _rename_error(final, exc) from None
+    try:
+        os.replace(tmp, final)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            os.unlink(final)
+        raise _rename_error(final, exc) from None
+
+
 class TempFiles:
     """Temporary files that become final files all together, or not at all.
 
     Use as a context manager: leaving it with an exception (including
-    KeyboardInterrupt) removes every temporary; :meth:`commit` renames them
+    KeyboardInterrupt) removes every temporary; :meth:`commit` moves them
     into place in the order they were made. GDAL side-car files
-    (``.aux.xml``) follow their raster.
+    (``.aux.xml``) follow their raster. Temporaries are created exclusively,
+    so a temporary never replaces an existing file.
     """
 
     def __init__(self):
@@ -630,13 +888,13 @@ class TempFiles:
 
     def new(self, final, suffix=""):
         """Reserve a temporary for ``final`` and return its path."""
-        tmp = temp_path(final, suffix)
+        tmp = _reserve(final, suffix)
         self._pairs.append((tmp, Path(final)))
         return tmp
 
     def scratch(self, near, suffix=""):
         """Reserve a temporary that is removed at the end, never committed."""
-        tmp = temp_path(near, suffix)
+        tmp = _reserve(near, suffix)
         self._extra.append(tmp)
         return tmp
 
@@ -646,28 +904,39 @@ class TempFiles:
         self._pairs = [(t, f) for t, f in self._pairs if t != tmp]
         self._extra = [t for t in self._extra if t != tmp]
 
-    def commit(self):
-        """Rename every temporary into place (``os.replace``, atomic per file)."""
+    def commit(self, overwrite=False):
+        """Move every temporary into place (:func:`publish`, atomic per file).
+
+        Without ``overwrite`` a final file that exists by now (another run
+        wrote it meanwhile) is refused and the files this commit already
+        placed are taken back, so nothing is replaced.
+        """
         for tmp in self._extra:
             _remove_with_sidecars(tmp)
-        for tmp, final in self._pairs:
-            aux = Path(str(tmp) + ".aux.xml")
-            if aux.exists():
-                os.replace(aux, str(final) + ".aux.xml")
-            else:
-                stale = Path(str(final) + ".aux.xml")
-                if stale.exists():
-                    with contextlib.suppress(OSError):
-                        stale.unlink()
-            try:
-                os.replace(tmp, final)
-            except OSError as exc:
-                raise DestinationError(
-                    f"The destination {str(final)!r} must be writable, got an error when "
-                    f"renaming the finished file into place: {exc}"
-                ) from None
-        self._pairs = []
         self._extra = []
+        moves = []
+        for tmp, final in self._pairs:
+            aux, final_aux = Path(str(tmp) + ".aux.xml"), Path(str(final) + ".aux.xml")
+            if os.path.exists(aux) and not _name_fits(final_aux):
+                log.warning("dropped GDAL's %s: the name %s.aux.xml is too long", aux.name, final.name)
+                _remove_with_sidecars(aux)
+            elif os.path.exists(aux):
+                moves.append((aux, final_aux))
+            elif overwrite and _name_fits(final_aux):
+                with contextlib.suppress(OSError):
+                    final_aux.unlink()
+            moves.append((tmp, final))
+        placed = []
+        try:
+            for tmp, final in moves:
+                ident = _identity(tmp)[1]
+                publish(tmp, final, overwrite)
+                placed.append((final, ident))
+        except BaseException:
+            if not overwrite:
+                _take_back(placed)
+            raise
+        self._pairs = []
 
     def cleanup(self):
         """Remove every temporary that was not committed."""
@@ -684,6 +953,14 @@ class TempFiles:
     def __exit__(self, exc_type, exc, tb):
         self.cleanup()
         return False
+
+
+def _take_back(placed):
+    """Remove files this run placed (only while they are still this run's: same inode)."""
+    for final, ident in placed:
+        if ident is not None and _identity(final)[1] == ident:
+            with contextlib.suppress(OSError):
+                os.unlink(final)
 
 
 def _remove_with_sidecars(tmp):

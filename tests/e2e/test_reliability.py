@@ -40,7 +40,7 @@ from rasterio.control import GroundControlPoint
 
 from geosr.cli.main import geosr as cli
 
-from helpers import camera, sha256_of
+from helpers import add_sidecars, camera, sha256_of, write_vrt
 
 GEOSR = Path(sys.executable).parent / "geosr"
 README = Path(__file__).resolve().parents[2] / "README.md"
@@ -397,6 +397,26 @@ def make_antimeridian(env):
                   transform=Affine(0.1, 0, 178, 0, -0.1, 10))
 
 
+# --- round 2: data loss and destinations
+def make_vrt_with_sidecars(env):
+    """A VRT reading member.tif, which has .msk, .ovr and .aux.xml sidecars."""
+    member = _write(env.work / "member.tif", camera(40, 44).astype(np.uint8))
+    add_sidecars(member)
+    return write_vrt(env.work / "mosaic.vrt", member)
+
+
+def make_with_mask_sidecar(env):
+    src = scene(env)
+    add_sidecars(src)
+    return src
+
+
+def model_copy(env):
+    path = env.work / "model.npz"
+    shutil.copyfile(env.model, path)
+    return path
+
+
 # ------------------------------------------------------------------- the table
 @dataclasses.dataclass(frozen=True)
 class Case:
@@ -612,6 +632,36 @@ CASES = [
          kind="group-signal", advice="Run again; nothing was left behind."),
     Case("sigterm-workers", "SIGTERM during --workers 2", scene, ("--workers", "2"), code=143,
          message="terminated", kind="group-signal", advice="Run again; nothing was left behind."),
+    # --- round 2: data loss and destinations
+    Case("dst-vrt-member", "DST is the file a VRT source reads its pixels from", make_vrt_with_sidecars,
+         ("--overwrite",), code=1, message="must differ from every file the run reads", kind="dst-read",
+         advice="Name another output file; the source's own files are never written."),
+    Case("dst-mask-sidecar", "DST is the source's .msk mask sidecar", make_with_mask_sidecar,
+         ("--overwrite",), code=1, message="must differ from every file the run reads", kind="dst-read",
+         advice="Name another output file; the source's own files are never written."),
+    Case("dst-overview-sidecar", "DST is a hard link to the .ovr overviews of a VRT member",
+         make_vrt_with_sidecars, ("--overwrite",), code=1, message="must differ from every file the run reads",
+         kind="dst-read", advice="Name another output file; links are resolved before comparing."),
+    Case("dst-model-file", "DST is the --model file", scene, ("--model", "{extra}", "--overwrite"), code=1,
+         message="must differ from every file the run reads", kind="dst-read", extra=model_copy,
+         advice="Name another output file."),
+    Case("dst-race", "two runs write the same DST at once, neither with --overwrite", None, code=1,
+         message="appeared while this run was writing", kind="race",
+         advice="Nothing is lost: the first run's file stands; pass --overwrite to replace it."),
+    Case("dst-trailing-slash", "DST ends in '/'", scene, code=1, message="got a folder path",
+         kind="dst-slash", advice="Name a file: magnify writes one raster."),
+    Case("dst-existing-folder", "DST is an existing folder", scene, ("--overwrite",), code=1,
+         message="must be a file path, got a directory", kind="dst-folder", advice="Name a file inside it."),
+    Case("dst-long-name", "DST's file name is 250 bytes long", scene, code=0, message="geosr: wrote",
+         kind="long-name", advice="Nothing: the temporary's name is shortened."),
+    Case("dst-name-too-long", "DST's file name is longer than 255 bytes", scene, code=1,
+         message="must have a file name of at most 255 bytes", kind="too-long",
+         advice="Use a shorter name."),
+    Case("stac-is-dst", "--stac with a DST ending in .json", scene, ("--stac",), code=1,
+         message="STAC sidecar", kind="stac-json", advice="Give DST a raster extension such as .tif."),
+    Case("dst-stale-aux", "DST's .aux.xml sidecar is left over from an earlier file", scene, code=1,
+         message="must not have a sidecar yet", kind="stale-aux",
+         advice="Remove the old .aux.xml, or pass --overwrite."),
 ]
 
 
@@ -786,7 +836,7 @@ def _big_scene(env, rows=240, cols=240):
 
 # ------------------------------------------------------------------ the test
 #: Cases that run the console script for many seconds (still run by make test).
-SLOW_KINDS = ("signal", "sigkill", "worker-killed", "disk-full", "group-signal")
+SLOW_KINDS = ("signal", "sigkill", "worker-killed", "disk-full", "group-signal", "race")
 
 
 @pytest.mark.parametrize("case", [
@@ -800,6 +850,8 @@ def test_case(case, env, monkeypatch):
     if kind in ("signal", "sigkill", "worker-killed", "group-signal"):
         pytest.importorskip("distributed")
         return _interruption(case, env)
+    if kind in ROUND2_KINDS:
+        return _round2(case, env, monkeypatch)
     src = case.make(env)
     dst = env.out / "o.tif"
     args = _fill(case.args, env, case)
@@ -1044,6 +1096,75 @@ def _worker_killed(case, env, src, dst):
         assert a.read().tobytes() == b.read().tobytes()
         assert a.profile == b.profile
     assert sorted(os.listdir(env.out)) == ["calm.tif", "o.tif"]
+
+
+# --- round 2: data loss and destinations
+ROUND2_KINDS = ("dst-read", "race", "dst-slash", "dst-folder", "long-name", "too-long", "stac-json", "stale-aux")
+
+
+def _round2_dst(case, env, src, args):
+    """The destination of a round-2 case (made beside the inputs where it is one of them)."""
+    if case.kind == "dst-read":
+        if case.id == "dst-model-file":
+            return Path(args[args.index("--model") + 1])
+        if case.id == "dst-mask-sidecar":
+            return Path(str(src) + ".msk")
+        if case.id == "dst-overview-sidecar":
+            link = env.out / "o.tif"
+            os.link(env.work / "member.tif.ovr", link)
+            return link
+        return env.work / "member.tif"
+    if case.kind == "dst-slash":
+        return str(env.out / "new") + "/"
+    if case.kind == "dst-folder":
+        (env.out / "o.tif").mkdir()
+    if case.kind in ("long-name", "too-long"):
+        return env.out / ("x" * (246 if case.kind == "long-name" else 252) + ".tif")
+    if case.kind == "stac-json":
+        return env.out / "o.json"
+    if case.kind == "stale-aux":
+        (env.out / "o.tif.aux.xml").write_text("<PAMDataset/>")
+    return env.out / "o.tif"
+
+
+def _round2(case, env, monkeypatch):
+    if case.kind == "race":
+        return _race(case, env)
+    src = case.make(env)
+    args = _fill(case.args, env, case)
+    dst = _round2_dst(case, env, src, args)
+    before = {p: _digest(p) for p in (env.work, env.out)}
+    code, stdout, stderr = run_cli(["magnify", src, dst, *args])
+    assert code == case.code, (code, stderr)
+    check_stderr(stderr, case)
+    check_message(stdout, stderr, case)
+    if case.code == 0:
+        assert os.listdir(env.out) == [Path(dst).name]
+        _check_success_output(src, dst, case)
+    else:  # nothing written, nothing changed, in the inputs' folder and the destination's
+        assert {p: _digest(p) for p in (env.work, env.out)} == before
+    assert _temps(env.out) == [] and _temps(env.work) == []
+
+
+def _race(case, env):
+    """A slow run and a quick one to the same DST: the quick one wins, the slow one refuses."""
+    src = _big_scene(env)
+    before_src = _digest(src)
+    dst = env.out / "o.tif"
+    slow = Run(slow_args(src, dst, env))
+    slow.wait_for_progress()  # past its destination check: DST did not exist then
+    quick = ["magnify", src, dst, "--model", env.model, "--chunk", "256", "--quiet"]
+    code, _, stderr = run_cli(quick)
+    assert code == 0, stderr
+    winner = sha256_of(dst)
+    code, stdout, stderr = slow.finish()
+    assert code == case.code, stderr
+    check_stderr(stderr, case)
+    assert sha256_of(dst) == winner and os.listdir(env.out) == ["o.tif"]  # the winner's file, intact
+    code, _, stderr = run_cli([*quick[:2], env.out / "again.tif", *quick[3:]])
+    with rasterio.open(dst) as a, rasterio.open(env.out / "again.tif") as b:
+        assert a.read().tobytes() == b.read().tobytes()
+    assert _digest(src) == before_src
 
 
 # ------------------------------------------------------------ the README table

@@ -23,7 +23,7 @@ from rasterio.transform import RPCTransformer
 from geosr.errors import GeoreferencingWarning
 from geosr.pipeline.magnify import magnify_raster
 
-from helpers import camera
+from helpers import camera, vrt_with_band_nodata
 
 CLASSES = {k: (40 * k, 255 - 40 * k, 7 * k, 255) for k in range(6)}
 
@@ -93,15 +93,7 @@ def test_categorical_band_beside_a_magnified_band(make_raster, run_dir, bicubic_
 
 
 def _band_nodata_vrt(tmp_path, make_raster, data, values):
-    member = make_raster(data, name="member.tif")
-    vrt = tmp_path / "bands.vrt"
-    rasterio.shutil.copy(member, vrt, driver="VRT")
-    text = vrt.read_text()
-    for band, value in enumerate(values, start=1):
-        tag = f'band="{band}">'
-        text = text.replace(tag, f"{tag}\n    <NoDataValue>{value}</NoDataValue>", 1)
-    vrt.write_text(text)
-    return vrt
+    return vrt_with_band_nodata(make_raster(data, name="member.tif"), tmp_path / "bands.vrt", values)
 
 
 @pytest.mark.parametrize("dtype, values", [("uint8", (3, 200)), ("float32", (-9999.0, 0.0))])

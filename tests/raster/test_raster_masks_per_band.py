@@ -6,23 +6,13 @@ import pytest
 from geosr.raster.io import inspect_source
 from geosr.raster.masks import MaskMode, mask_mode, to_output_dtype
 
-from helpers import camera
+from helpers import camera, vrt_with_band_nodata
 
 
 def _vrt_with_band_nodata(tmp_path, make_raster, values, dtype="uint8"):
     """A VRT over a two-band GeoTIFF whose bands declare their own nodata values."""
-    import rasterio.shutil
-
     data = np.stack([camera(16, 18), camera(16, 18, 300, 200)]).astype(dtype)
-    member = make_raster(data, name="member.tif")
-    vrt = tmp_path / "bands.vrt"
-    rasterio.shutil.copy(member, vrt, driver="VRT")
-    text = vrt.read_text()
-    for band, value in enumerate(values, start=1):
-        tag = f'band="{band}">'
-        text = text.replace(tag, f"{tag}\n    <NoDataValue>{value}</NoDataValue>", 1)
-    vrt.write_text(text)
-    return vrt
+    return vrt_with_band_nodata(make_raster(data, name="member.tif"), tmp_path / "bands.vrt", values)
 
 
 def test_different_nodata_per_band_keep_one_shared_value(tmp_path, make_raster):
