@@ -37,6 +37,7 @@ _SUBMODULES = {
     "errors": "geosr.errors",
     "metrics": "geosr.core.metrics",
     "sparse": "geosr.core.sparse",
+    "xarray": "geosr.xarray",
 }
 
 __all__ = ["__version__", "GeosrError", *_ATTRIBUTES, *_SUBMODULES]

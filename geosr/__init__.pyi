@@ -1,5 +1,6 @@
 # Static view of geosr's public API (geosr/__init__.py loads these on first use).
 from . import errors as errors
+from . import xarray as xarray
 from ._version import __version__ as __version__
 from .assess.protocol import assess_raster as assess_raster
 from .core import metrics as metrics
@@ -45,4 +46,5 @@ __all__ = [
     "errors",
     "metrics",
     "sparse",
+    "xarray",
 ]
