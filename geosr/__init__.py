@@ -26,6 +26,8 @@ _ATTRIBUTES = {
     "save_guided_model": "geosr.modelfile",
     "magnify_raster": "geosr.pipeline.magnify",
     "magnify_array": "geosr.pipeline.array",
+    "magnify_many": "geosr.pipeline.batch",
+    "BatchItem": "geosr.pipeline.batch",
     "train_from_rasters": "geosr.pipeline.train",
     "train_guided": "geosr.pipeline.guided",
     "assess_raster": "geosr.assess.protocol",
@@ -35,6 +37,7 @@ _SUBMODULES = {
     "errors": "geosr.errors",
     "metrics": "geosr.core.metrics",
     "sparse": "geosr.core.sparse",
+    "xarray": "geosr.xarray",
 }
 
 __all__ = ["__version__", "GeosrError", *_ATTRIBUTES, *_SUBMODULES]

@@ -216,16 +216,19 @@ class ProgressBars:
     ----------
     label : str
         Printed in front of the bar (``"magnify"``, ``"train: collect"``).
+    unit : str
+        What is counted, plural (``"blocks"``, ``"files"``).
     """
 
-    def __init__(self, label: str) -> None:
+    def __init__(self, label: str, unit: str = "blocks") -> None:
         self.label = label
+        self.unit = unit
         self.bar: Progress | None = None
 
     def __call__(self, done: int, total: int) -> None:
         if self.bar is None or done == 0:
             self.close()
-            self.bar = Progress(total, self.label).__enter__()
+            self.bar = Progress(total, self.label, self.unit).__enter__()
         else:
             self.bar.update(done - self.bar.done)
         if done >= total:
@@ -239,12 +242,12 @@ class ProgressBars:
 
 
 @contextlib.contextmanager
-def progress_bars(label: str, quiet: bool) -> Iterator[ProgressBars | None]:
+def progress_bars(label: str, quiet: bool, unit: str = "blocks") -> Iterator[ProgressBars | None]:
     """A :class:`ProgressBars` callback for the duration, or None with ``--quiet``."""
     if quiet:
         yield None
         return
-    bars = ProgressBars(label)
+    bars = ProgressBars(label, unit)
     try:
         yield bars
     finally:

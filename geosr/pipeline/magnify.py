@@ -47,7 +47,14 @@ from ..raster.profiles import (
     validate_creation_options,
 )
 from ..raster.stac import stac_item, stac_path, write_stac_item
-from ..raster.tags import carried_band_tags, carried_tags, provenance_tags, utc_now
+from ..raster.tags import (
+    carried_band_tags,
+    carried_tags,
+    file_sha256,
+    options_json,
+    provenance_tags,
+    utc_now,
+)
 from ..raster.transforms import scale_gcps, scaled_transform
 from ..raster.windows import Block, check_chunk_size
 from .array import magnify_array
@@ -90,6 +97,7 @@ __all__ = [
     "ConsistencyResidual",
     "CONSISTENCY_TOLERANCE",
     "DEFAULT_MAX_OUTPUT_BYTES",
+    "output_options",
 ]
 
 #: Largest uncompressed output accepted unless raised (guards against a
@@ -134,6 +142,7 @@ class _Options:
     creation_options: dict[str, str]
     progress: ProgressCallback | None
     detail_map: Any = None
+    options: str = "{}"
 
 
 def _check_options(model, *, scale, method, chunk_size, workers, scheduler, creation_options,
@@ -155,7 +164,9 @@ def _check_options(model, *, scale, method, chunk_size, workers, scheduler, crea
         raise ParameterError("The 'training' parameter must only be given with self_train=True")
     if progress is not None and not callable(progress):
         raise ParameterError(f"The 'progress' parameter must be callable, got {type(progress).__name__}")
-    spec = resolve_scheduler(scheduler, workers)
+    # A resolved spec (a batch run's one cluster) is used as it is.
+    spec = scheduler if isinstance(scheduler, SchedulerSpec) and workers is None \
+        else resolve_scheduler(scheduler, workers)
     user_opts = parse_creation_options(creation_options)
     check_chunk_size(chunk_size)
     return _Options(
@@ -164,6 +175,49 @@ def _check_options(model, *, scale, method, chunk_size, workers, scheduler, crea
         check_free_space=flags.pop("check_free_space"), max_output_bytes=max_output_bytes,
         scheduler=spec, creation_options=user_opts, detail_map=detail_map, **flags,
     )
+
+
+def _listed(values):
+    """A band list (``"1,2"``, ``[1, 2]`` or None) as a list of text, for the options tag."""
+    if values is None:
+        return None
+    if isinstance(values, str):
+        return [v.strip() for v in values.split(",")]
+    return [str(v) for v in values]
+
+
+def output_options(*, scale=None, method=None, bands=None, consistency=False, ensemble=False,
+                   spectral_guard=True, self_train=False, training=None, guide=None,
+                   guide_bands=None, cog=False, creation_options=None, stac=False, **_ignored):
+    """The options that change what a run writes, as canonical JSON (``GEOSR_OPTIONS``).
+
+    Takes :func:`magnify_raster`'s keywords; those that cannot change the
+    output files (``chunk_size``: chunked equals whole; ``workers``,
+    ``scheduler``, ``retries``, ``progress``, the size checks) are ignored.
+    Guides are recorded by file name, not by checksum.
+
+    Returns
+    -------
+    str
+    """
+    return options_json({
+        "scale": None if scale is None else int(scale),
+        "method": None if method is None else str(Method.parse(method, "method")),
+        "bands": _listed(bands),
+        "consistency": bool(consistency),
+        "ensemble": bool(ensemble),
+        "spectral_guard": bool(spectral_guard),
+        "self_train": bool(self_train),
+        "training": None if training is None else {k: v for k, v in training.items() if k != "progress"},
+        "guide": None if guide is None else [
+            os.path.basename(os.fspath(g)) for g in
+            ([guide] if isinstance(guide, (str, os.PathLike)) else guide)
+        ],
+        "guide_bands": _listed(guide_bands),
+        "cog": bool(cog),
+        "creation_options": parse_creation_options(creation_options),
+        "stac": bool(stac),
+    })
 
 
 def _output_dtype(info: SourceInfo, bands: Sequence[int]) -> str:
@@ -333,7 +387,7 @@ def _describe_output(plan: MagnifyPlan, opts: _Options, guided: Any = None) -> _
     tags.update(provenance_tags(
         scale=plan.scale, method=method_name, model_sha256=shas,
         source_name=info.name, created=created, consistency=opts.consistency, ensemble=opts.ensemble,
-        spectral_guard=bp.spectral_guard,
+        spectral_guard=bp.spectral_guard, source_sha256=file_sha256(info.path), options=opts.options,
     ))
     band_tags = []
     n_magnified = 0
@@ -719,10 +773,12 @@ def magnify_raster(
     workers : int, optional
         Without ``scheduler``: start a dask.distributed LocalCluster of this
         many worker processes. With ``"threads"``/``"processes"``: the pool size.
-    scheduler : str or distributed.Client, optional
+    scheduler : str, distributed.Client or SchedulerSpec, optional
         ``"threads"`` (default), ``"processes"``, ``"synchronous"``, or a
         cluster address ``"tcp://host:port"`` (the workers must reach
-        ``src`` under the same path).
+        ``src`` under the same path); or a resolved
+        :class:`~geosr.parallel.schedule.SchedulerSpec` (used as it is, so
+        that many runs share one cluster).
     bands : sequence of int or str, optional
         1-based bands to magnify, in output order (``"1,2,3"`` works too).
         Alpha bands are magnified by nearest neighbour.
@@ -800,6 +856,9 @@ def magnify_raster(
         A task failed for good, or the cluster could not be reached.
     """
     started = time.monotonic()
+    given = dict(scale=scale, method=method, bands=bands, consistency=consistency, ensemble=ensemble,
+                 spectral_guard=spectral_guard, self_train=self_train, training=training, guide=guide,
+                 guide_bands=guide_bands, cog=cog, creation_options=creation_options, stac=stac)
     opts = _check_options(
         model, scale=scale, method=method, chunk_size=chunk_size, workers=workers,
         scheduler=scheduler, creation_options=creation_options, max_output_bytes=max_output_bytes,
@@ -808,6 +867,7 @@ def magnify_raster(
         check_free_space=check_free_space, progress=progress, guided=guide is not None,
         detail_map=detail_map,
     )
+    opts = dataclasses.replace(opts, options=output_options(**given))
     if guide is not None:
         return _magnify_guided(src, dst, model, bands, guide, guide_bands, opts, started)
     if guide_bands is not None:

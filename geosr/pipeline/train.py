@@ -191,7 +191,7 @@ def train_from_rasters(
     retries: int = 2,
     random_state: int | None = _DEFAULTS["random_state"],
     output: str | os.PathLike[str] | None = None,
-    overwrite: bool = True,
+    overwrite: bool = False,
     progress: ProgressCallback | None = None,
     **model_params: Any,
 ) -> list[Any]:

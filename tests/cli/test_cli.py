@@ -414,7 +414,7 @@ def test_train_passes_model_parameters(recorder, tmp_path):
         "bands": [2], "shared": True, "random_state": 7, "chunk_size": 512, "workers": None,
         "scheduler": None, "progress": None, "output": "m.npz", "method": "sparse",
         "degradation": "gaussian", "sigma": 1.5, "n_atoms": 128, "sparsity": 2, "n_iter": 5,
-        "neighbours": 256, "max_samples": 20000, "high_fit": "image",
+        "neighbours": 256, "max_samples": 20000, "high_fit": "image", "overwrite": False,
     }
 
 

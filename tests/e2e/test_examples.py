@@ -100,6 +100,20 @@ def test_guided_sharpen(tmp_path):
     assert psnr["guided"] > psnr["bicubic"] + 6
 
 
+def test_xarray_magnify(tmp_path):
+    pytest.importorskip("rioxarray", reason="the example needs the xarray extra: pip install geosr[xarray]")
+    out = run_example("xarray_magnify.py", "--out", tmp_path)
+    src = TEST_DATA / "rgb-byte-crop.tif"
+    tags = check_magnified(tmp_path / "rgb-byte-crop-x2-xarray.tif", src, 2)
+    ref_tags = check_magnified(tmp_path / "rgb-byte-crop-x2.tif", src, 2)
+    assert tags["GEOSR_MODEL_SHA256"] == ref_tags["GEOSR_MODEL_SHA256"]
+    with rasterio.open(tmp_path / "rgb-byte-crop-x2-xarray.tif") as a, \
+            rasterio.open(tmp_path / "rgb-byte-crop-x2.tif") as b:
+        assert a.transform == b.transform and (a.read() == b.read()).all()
+    assert "versus magnify_raster: same grid True, largest difference 0" in out
+    assert "lazy   : {'band': 3, 'y': 480, 'x': 480}" in out and "4 dask chunks" in out
+
+
 @pytest.mark.slow
 @pytest.mark.cluster
 def test_cluster(tmp_path):
