@@ -34,3 +34,9 @@ def test_detail_map_written_and_source_refused(make_raster, tmp_path):
     assert ok.exit_code == 0, ok.output
     with rasterio.open(tmp_path / "d.tif") as ds:
         assert ds.shape == (64, 64) and ds.dtypes[0] == "float32"
+
+
+def test_detail_map_is_refused_with_output_dir(tmp_path):
+    result = CliRunner().invoke(cli, ["magnify", "a.tif", "b.tif", "--output-dir", str(tmp_path), "-s", "2",
+                                      "--detail-map", "d.tif"])
+    assert result.exit_code == 2 and "--detail-map applies to one SRC and DST" in result.output
