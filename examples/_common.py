@@ -5,6 +5,7 @@ Not an example itself; the scripts beside it import it.
 
 from __future__ import annotations
 
+import argparse
 import sys
 import tempfile
 from pathlib import Path
@@ -39,3 +40,14 @@ def run(main) -> None:
         print(f"error: {exc}", file=sys.stderr)
         status = 1
     raise SystemExit(status)
+
+
+def scene_arguments(doc: str) -> argparse.ArgumentParser:
+    """The arguments the single-scene examples share: SRC, ``--out`` and ``--scale``."""
+    parser = argparse.ArgumentParser(description=doc.splitlines()[0])
+    parser.add_argument("src", nargs="?", default=DATA / "rgb-byte-crop.tif", type=Path,
+                        help="raster to magnify (default: the bundled 3-band crop)")
+    parser.add_argument("--out", type=Path, default=None,
+                        help="output folder (default: a new temporary folder)")
+    parser.add_argument("--scale", type=int, default=2, help="magnification, 2 to 4 with the shipped models")
+    return parser

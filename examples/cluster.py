@@ -16,14 +16,11 @@ Run from the repository root:
 
 from __future__ import annotations
 
-import argparse
-from pathlib import Path
-
 import rasterio
 
 import geosr
 
-from _common import DATA, output_folder, run
+from _common import output_folder, run, scene_arguments
 
 
 def magnify_on(address, src, dst, scale):
@@ -36,12 +33,7 @@ def magnify_on(address, src, dst, scale):
 
 
 def main(argv=None):
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("src", nargs="?", default=DATA / "rgb-byte-crop.tif", type=Path,
-                        help="raster to magnify (default: the bundled 3-band crop)")
-    parser.add_argument("--out", type=Path, default=None,
-                        help="output folder (default: a new temporary folder)")
-    parser.add_argument("--scale", type=int, default=2)
+    parser = scene_arguments(__doc__)
     parser.add_argument("--address", default=None,
                         help="address of a running scheduler (default: start a LocalCluster)")
     args = parser.parse_args(argv)

@@ -18,24 +18,16 @@ repository root:
 
 from __future__ import annotations
 
-import argparse
-from pathlib import Path
-
 import numpy as np
 import rasterio
 
 import geosr
 
-from _common import DATA, output_folder, run
+from _common import output_folder, run, scene_arguments
 
 
 def main(argv=None):
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("src", nargs="?", default=DATA / "rgb-byte-crop.tif", type=Path,
-                        help="raster to magnify (default: the bundled 3-band crop)")
-    parser.add_argument("--out", type=Path, default=None,
-                        help="output folder (default: a new temporary folder)")
-    parser.add_argument("--scale", type=int, default=2, help="magnification, 2 to 4 with the shipped models")
+    parser = scene_arguments(__doc__)
     parser.add_argument("--chunk", type=int, default=128, help="block side in source pixels")
     args = parser.parse_args(argv)
     try:
