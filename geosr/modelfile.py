@@ -27,6 +27,7 @@ from .core.features import FEATURE_RADIUS
 from .core.guided import GuidedRegression
 from .core.model import CoupledDictionary
 from .core.params import check_params, header_params, model_sha256
+from .enums import Method
 from .errors import DestinationError, ModelError, ParameterError
 
 if TYPE_CHECKING:
@@ -35,6 +36,8 @@ if TYPE_CHECKING:
 __all__ = [
     "FORMAT_VERSION",
     "GUIDED_FORMAT",
+    "SHIPPED_METHODS",
+    "SHIPPED_SCALES",
     "guided_model_sha256",
     "load_guided_model",
     "save_guided_model",
@@ -336,29 +339,47 @@ def _model_from_entry(entry, n, arrays):
     return model
 
 
-def default_model_path(scale: int) -> Traversable:
-    """Path of the model shipped in the package for a scale factor.
+#: The methods with models shipped in the package, the default first.
+SHIPPED_METHODS = ("anchored", "sparse")
+
+#: The scales with models shipped in the package.
+SHIPPED_SCALES = (2, 3, 4)
+
+
+def default_model_path(scale: int, method: str | Method = "anchored") -> Traversable:
+    """Path of the model shipped in the package for a scale factor and a method.
 
     Parameters
     ----------
     scale : int
         From 2 to 8 (models are shipped for 2, 3 and 4).
+    method : {"anchored", "sparse"} or Method
+        The method of the model (both are shipped).
 
     Returns
     -------
     importlib.resources.abc.Traversable
-        It may not exist (see :func:`default_model`).
+        ``geosr/models/<method>-x<scale>.npz``; it may not exist (see
+        :func:`default_model`).
+
+    Raises
+    ------
+    ParameterError
+        A bad scale or method.
     """
     scale = check_scale(scale)
-    return resources.files("geosr") / "models" / f"default-x{scale}.npz"
+    method = Method.parse(method, "method")
+    return resources.files("geosr") / "models" / f"{method}-x{scale}.npz"
 
 
-def default_model(scale: int) -> CoupledDictionary:
-    """The model shipped in the package for ``scale`` (2, 3 or 4).
+def default_model(scale: int, method: str | Method = "anchored") -> CoupledDictionary:
+    """The model shipped in the package for ``scale`` (2, 3 or 4) and ``method``.
 
     Parameters
     ----------
     scale : int
+    method : {"anchored", "sparse"} or Method
+        The method of the model (both are shipped).
 
     Returns
     -------
@@ -366,21 +387,31 @@ def default_model(scale: int) -> CoupledDictionary:
 
     Raises
     ------
+    ParameterError
+        A bad scale or method.
     ModelError
-        No model is shipped for that scale, or its file is missing.
+        No model is shipped for that scale, its file is missing, or it holds
+        a model of another method.
     """
-    path = default_model_path(scale)
+    path = default_model_path(scale, method)
+    scale, method = check_scale(scale), Method.parse(method, "method")
     if not path.is_file():
-        if check_scale(scale) in (2, 3, 4):
+        if scale in SHIPPED_SCALES:
             raise ModelError(
-                f"The shipped model for x{scale} must be installed with geosr, got no file at "
+                f"The shipped {method} model for x{scale} must be installed with geosr, got no file at "
                 f"{path}; reinstall geosr or pass a model file"
             )
         raise ModelError(
             f"The 'scale' parameter must be one with a shipped model (2, 3 or 4), got {scale}; "
             "train a model with 'geosr train' for other scales"
         )
-    return CoupledDictionary.load(str(path))
+    model = CoupledDictionary.load(str(path))
+    if str(model.method) != str(method):
+        raise ModelError(
+            f"The shipped model file {path} must hold a {method} model, got a {model.method} one; "
+            "reinstall geosr"
+        )
+    return model
 
 
 def read_header(path: str | os.PathLike) -> dict[str, Any]:
