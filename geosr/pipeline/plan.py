@@ -7,8 +7,8 @@ Before any pixel is computed a run settles four things, in this order:
    nearest neighbour);
 2. which models serve them (:func:`resolve_models`: one shared model or one
    per magnified band, from an object, a list of them, a model file, or the
-   model shipped for the scale; checked against the requested scale and
-   method);
+   model shipped for the scale and the requested method, anchored when none
+   is requested; checked against the requested scale and method);
 3. the context every block needs (the largest ``context_radius`` of the
    models) and the block grid (:func:`plan_blocks`), frozen in a
    :class:`MagnifyPlan` that holds the :class:`~geosr.raster.blocks.BlockPlan`
@@ -173,14 +173,19 @@ class ModelChoice:
     source: str
 
 
-def _load(model: Any, scale: int | None) -> tuple[list[Any], str]:
-    """A model argument as a list of model objects and a description."""
+def _load(model: Any, scale: int | None, method: Any = None) -> tuple[list[Any], str]:
+    """A model argument as a list of model objects and a description.
+
+    Without a model, the model shipped for ``scale`` and ``method``
+    (anchored when no method is requested).
+    """
     if model is None:
         if scale is None:
             raise ParameterError("The 'scale' parameter must be given when no model is, got None")
-        from ..modelfile import default_model
+        from ..modelfile import SHIPPED_METHODS, default_model
 
-        return [default_model(scale)], f"shipped default model for x{scale}"
+        shipped = SHIPPED_METHODS[0] if method is None else str(Method.parse(method, "method"))
+        return [default_model(scale, shipped)], f"shipped {shipped} model for x{scale}"
     if isinstance(model, (str, os.PathLike)):
         from ..modelfile import load_models
 
@@ -243,11 +248,12 @@ def resolve_models(
     ----------
     model : CoupledDictionary, list of them, str, os.PathLike or None
         One shared model, one per band, a model file, or None for the model
-        shipped for ``scale``.
+        shipped for ``scale`` and ``method``.
     scale : int, optional
         Required scale (needed when ``model`` is None).
     method : str or Method, optional
-        Required method.
+        Required method; with no ``model`` it picks the shipped model
+        (anchored when not given).
     bands : sequence of int
         The bands the models serve (one model each, or one shared).
     role : str
@@ -265,7 +271,7 @@ def resolve_models(
         The models do not fit the scale, method or band count, or the file
         is damaged.
     """
-    models, source = _load(model, scale)
+    models, source = _load(model, scale, method)
     found = check_models(models, scale, method, bands, role)
     return ModelChoice(tuple(models), found, source)
 
