@@ -408,8 +408,8 @@ def default_model(scale: int, method: str | Method = "anchored") -> CoupledDicti
     model = CoupledDictionary.load(str(path))
     if str(model.method) != str(method):
         raise ModelError(
-            f"The shipped model file {path} must hold a {method} model, got a {model.method} one; "
-            "reinstall geosr"
+            f"The shipped model file {path} must hold a {method} model, got one of method "
+            f"{str(model.method)!r}; reinstall geosr"
         )
     return model
 
