@@ -7,6 +7,7 @@ import textwrap
 
 import click
 
+from ..enums import Method
 from . import options
 
 _METHOD_NAMES = {
@@ -95,42 +96,74 @@ def format_card(card, width=78):
     return "\n".join(lines)
 
 
+def _shipped_paths(scale, method):
+    """The shipped model files for ``scale``: of ``method``, or of every method present."""
+    import warnings
+
+    from ..errors import ModelError
+    from ..modelfile import SHIPPED_METHODS, default_model_path
+
+    methods = SHIPPED_METHODS if method is None else (str(method),)
+    paths = {m: default_model_path(scale, m) for m in methods}
+    found = [str(p) for p in paths.values() if p.is_file()]
+    if not found:
+        which = "" if method is None else f" {method}"
+        raise ModelError(
+            f"The 'scale' parameter must be one with a shipped{which} model, got {scale}: "
+            f"this installation has no{which} default model for it"
+        )
+    for m, p in paths.items():
+        if not p.is_file():
+            warnings.warn(f"this installation has no shipped {m} model for x{scale} ({p.name})",
+                          UserWarning, stacklevel=2)
+    return found
+
+
 @click.command(short_help="Print a model card.")
 @click.argument("model", required=False, metavar="[MODEL]")
 @options.scale_option(
-    required=False, help="Describe the model shipped in the package for this scale instead."
+    required=False, help="Describe the models shipped in the package for this scale instead."
+)
+@click.option(
+    "--method",
+    type=options.EnumChoice(Method),
+    default=None,
+    help="With --scale: describe only the shipped model of this method. "
+    "Default: the shipped models of both methods, anchored first.",
 )
 @click.option("--json", "as_json", is_flag=True, default=False, help="Print the card as JSON.")
 @click.pass_context
-def describe(ctx, model, scale, as_json):
+def describe(ctx, model, scale, method, as_json):
     """Print the model card of MODEL: scale, method, parameters, training data,
     sample counts, sha256, the geosr version and the cautions.
+
+    With --scale, the cards of the models shipped for that scale, one per
+    method (--json prints them as a list), or only the one of --method.
 
     \b
     Examples:
       geosr describe drone-x4.npz
-      geosr describe --scale 3          # the shipped model for x3
+      geosr describe --scale 3                   # the shipped models for x3
+      geosr describe --scale 3 --method sparse   # the shipped sparse model for x3
     """
     if (model is None) == (scale is None):
         raise click.UsageError(
-            "Give either MODEL or --scale (for the shipped model), "
+            "Give either MODEL or --scale (for the shipped models), "
             f"got {'both' if model is not None else 'neither'}",
             ctx=ctx,
         )
-    from ..modelfile import default_model_path, model_card
+    if model is not None and method is not None:
+        raise click.UsageError(
+            "The '--method' option picks a shipped model and needs --scale, got MODEL", ctx=ctx
+        )
+    from ..modelfile import model_card
 
-    if model is None:
-        path = default_model_path(scale)
-        if not path.is_file():
-            from ..errors import ModelError
-
-            raise ModelError(
-                f"The 'scale' parameter must be one with a shipped model, got {scale}: "
-                "this installation has no default model for it"
-            )
-        model = str(path)
-    card = model_card(model)
-    if as_json:
-        click.echo(json.dumps(card, indent=2, sort_keys=False))
+    if model is not None:
+        cards = [model_card(model)]
     else:
-        click.echo(format_card(card))
+        cards = [model_card(path) for path in _shipped_paths(scale, method)]
+    if as_json:
+        one = model is not None or method is not None
+        click.echo(json.dumps(cards[0] if one else cards, indent=2, sort_keys=False))
+    else:
+        click.echo("\n\n".join(format_card(card) for card in cards))
