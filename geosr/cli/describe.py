@@ -110,7 +110,7 @@ def _shipped_paths(scale, method):
         which = "" if method is None else f" {method}"
         raise ModelError(
             f"The 'scale' parameter must be one with a shipped{which} model, got {scale}: "
-            f"this installation has no{which} default model for it"
+            f"this installation has no shipped{which} model for it"
         )
     for m, p in paths.items():
         if not p.is_file():
