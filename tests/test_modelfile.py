@@ -71,9 +71,10 @@ def test_object_arrays_never_loaded_and_never_advised(tmp_path):
     assert "pickle" not in str(info.value).lower()
 
 
-def test_truncated_archive(tmp_path):
+@pytest.mark.parametrize("method", ["anchored", "sparse"])
+def test_truncated_archive(tmp_path, method):
     path = tmp_path / "cut.npz"
-    with default_model_path(2).open("rb") as fh:
+    with default_model_path(2, method).open("rb") as fh:
         path.write_bytes(fh.read()[:2000])
     with pytest.raises(ModelError, match=r"damaged or truncated \.npz archive"):
         load_models(path)
