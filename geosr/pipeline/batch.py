@@ -211,7 +211,7 @@ def _setup(model: Any, options: dict[str, Any]) -> _Setup:
 
             method = str(CoupledDictionary().get_params()["method"])
         return _Setup(model, scale, method, None)
-    models, _ = _load(model, scale)
+    models, _ = _load(model, scale, method)
     scale = check_models(models, scale, method, tuple(range(len(models))))
     shared = models[0] if len(models) == 1 else models
     return _Setup(shared, scale, model_method(models[0]), frozenset(model_sha(m) for m in models))
