@@ -22,7 +22,7 @@ import numpy as np
 from .._validation import check_int, working_dtype
 from ..enums import Method
 from ..errors import InputError, ParameterError
-from .anchored import apply_projections, nearest_anchors
+from .anchored import apply_projections, find_anchors
 from .consistency import consistency_reach, make_consistent
 from .features import (
     FEATURE_RADIUS,
@@ -304,4 +304,4 @@ def _predict_in_dtype(params, arrays, features):
         for t in range(1, idx.shape[1]):
             out += coef[:, t : t + 1] * dh[idx[:, t]]
         return out
-    return apply_projections(features, nearest_anchors(features, dl), arrays["projections"])
+    return apply_projections(features, find_anchors(features, dl), arrays["projections"])
