@@ -8,6 +8,7 @@ of each model). It is never unpickled.
 from __future__ import annotations
 
 import contextlib
+import copy
 import json
 import os
 import stat
@@ -39,6 +40,7 @@ __all__ = [
     "SHIPPED_METHODS",
     "SHIPPED_SCALES",
     "guided_model_sha256",
+    "half_precision",
     "load_guided_model",
     "save_guided_model",
     "default_model",
@@ -103,7 +105,7 @@ def save_models(
     entries = []
     for n, model in enumerate(models):
         for name, value in model._arrays().items():
-            arrays[f"m{n}_{name}"] = value
+            arrays[f"m{n}_{name}"] = _compact(value)
         entry = model._header()
         entry["band_name"] = None if band_names is None else str(band_names[n])
         entries.append(entry)
@@ -115,6 +117,60 @@ def save_models(
         "models": entries,
     }
     _write_npz(path, arrays, header, overwrite)
+
+
+def _compact(values: np.ndarray) -> np.ndarray:
+    """``values`` as float16 when that holds them exactly (the file is smaller), else unchanged.
+
+    Loading converts every array back to float32, so the checksum, made
+    over the float32 values, is the same either way.
+    """
+    if values.dtype != np.float32 or values.size == 0:
+        return values
+    with np.errstate(over="ignore"):
+        half = values.astype(np.float16)
+    return half if np.array_equal(half.astype(np.float32), values) else values
+
+
+def half_precision(model: CoupledDictionary, names: Sequence[str] = ("projections", "dictionary_high")) -> CoupledDictionary:
+    """A copy of a fitted model with some arrays rounded to float16 precision.
+
+    Model files store such arrays as float16 (half the bytes); in memory
+    they stay float32. The checksum is recomputed for the rounded values.
+
+    Parameters
+    ----------
+    model : CoupledDictionary
+        Fitted.
+    names : sequence of str
+        Model-file names of the arrays to round (absent ones are skipped):
+        ``feature_kernel``, ``pca_eigenvalues``, ``dictionary_low``,
+        ``dictionary_high``, ``projections``.
+
+    Returns
+    -------
+    CoupledDictionary
+
+    Raises
+    ------
+    ParameterError
+        A name is not a model array, or a value is too large for float16.
+    """
+    arrays = model._arrays()
+    unknown = set(names) - set(_ARRAY_NAMES["sparse"]) - set(_ARRAY_NAMES["anchored"])
+    if unknown:
+        raise ParameterError(f"The 'names' parameter must name model arrays, got {sorted(unknown)}")
+    out = copy.deepcopy(model)
+    for name in names:
+        if name not in arrays:
+            continue
+        with np.errstate(over="ignore"):
+            half = arrays[name].astype(np.float16)
+        if not np.isfinite(half).all():
+            raise ParameterError(f"The model array {name!r} must fit in float16, got values beyond 65504")
+        setattr(out, name + "_", half.astype(np.float32))
+    out.sha256_ = model_sha256(out._arrays(), header_params(out.get_params()))
+    return out
 
 
 def _write_npz(path, arrays, header, overwrite=True):

@@ -106,3 +106,39 @@ def test_save_without_overwrite_refuses_an_existing_file_and_keeps_it(tmp_path, 
     assert sorted(p.name for p in tmp_path.iterdir()) == ["m.npz"]  # no temporary left
     save_models(path, [tiny_model], overwrite=True)
     assert path.read_bytes()[:2] == b"PK"  # an .npz (zip) archive replaced it
+
+
+def test_half_precision_halves_the_stored_array_and_keeps_the_checksum_rules(tmp_path, tiny_model):
+    from geosr.modelfile import half_precision, save_models
+
+    half = half_precision(tiny_model, ("projections",))
+    # Rounded to the nearest float16 (IEEE 754 binary16, as numpy converts), kept in float32.
+    np.testing.assert_array_equal(half.projections_, tiny_model.projections_.astype(np.float16).astype(np.float32))
+    assert half.projections_.dtype == np.float32 and half.sha256_ != tiny_model.sha256_
+    np.testing.assert_array_equal(half.dictionary_low_, tiny_model.dictionary_low_)
+    assert tiny_model.projections_.dtype == np.float32  # the model given is not changed
+    save_models(tmp_path / "full.npz", [tiny_model])
+    save_models(tmp_path / "half.npz", [half])
+    with np.load(tmp_path / "half.npz") as npz:
+        assert npz["m0_projections"].dtype == np.float16
+        assert npz["m0_dictionary_low"].dtype == np.float32  # not exactly float16: kept
+    with np.load(tmp_path / "full.npz") as npz:
+        assert npz["m0_projections"].dtype == np.float32
+    (loaded,) = load_models(tmp_path / "half.npz")
+    assert loaded.sha256_ == half.sha256_ and loaded.projections_.dtype == np.float32
+    np.testing.assert_array_equal(loaded.projections_, half.projections_)
+    assert os.path.getsize(tmp_path / "half.npz") < os.path.getsize(tmp_path / "full.npz")
+
+
+def test_half_precision_refuses_unknown_arrays_and_values_beyond_float16(tiny_model):
+    import copy
+
+    from geosr.errors import ParameterError
+    from geosr.modelfile import half_precision
+
+    with pytest.raises(ParameterError, match="must name model arrays"):
+        half_precision(tiny_model, ("weights",))
+    big = copy.deepcopy(tiny_model)
+    big.projections_ = big.projections_ * 0 + 1e6  # beyond float16's largest finite value, 65504
+    with pytest.raises(ParameterError, match="must fit in float16"):
+        half_precision(big, ("projections",))
