@@ -14,7 +14,8 @@ estimate of the first and predicts what is still missing.
   derivative filters of geosr's features (taps ``spacing`` high-res pixels
   apart, ``spacing = scale`` by default, as in the first stage) sampled over
   the ``3s x 3s`` patch around the cell, reduced by uncentred PCA keeping
-  99.9 % of the energy. Anchors: K-SVD on those features
+  99.9 % of the energy (``--energy``); at run time the projection is folded
+  into one linear map of the estimate's window around the cell. Anchors: K-SVD on those features
   (:func:`geosr.core.sparse.ksvd`, 1024 atoms, sparsity 3, 10 iterations).
   Regressions: A+ (:func:`geosr.core.anchored.fit_projections`, 2048
   neighbours, ridge 0.1) from the feature to the residual patch ``truth -
@@ -32,7 +33,7 @@ the standard protocol; common practice). Gains are over geosr's bicubic
 interpolation of the same low-res image. Times: best of five wall-clock
 runs of stage 1 alone and of both stages on the same low-res image.
 
-    .venv/bin/python benchmarks/bench_cascade.py [--scales 3] [--cache DIR] [--spacing N]
+    .venv/bin/python benchmarks/bench_cascade.py [--scales 3] [--cache DIR] [--spacing N] [--energy E]
 
 ``--cache DIR`` keeps the trained stages (``.npz``) between runs; a cached
 stage 1 is used only when its parameters match.
@@ -153,6 +154,32 @@ def estimate_features(est, scale, spacing):
     return np.ascontiguousarray(view.transpose(1, 2, 0, 3, 4)).reshape(h + 2, w + 2, -1)
 
 
+def window_kernel(basis, scale, spacing):
+    """The PCA-projected feature as a linear map of the estimate's window around a centre.
+
+    The window is ``3s + 2 * spacing`` high-res pixels wide (the patch and the
+    derivative reach); returns ``basis.T @ raw`` where ``raw`` maps the
+    flattened window to the raw feature of :func:`estimate_features`.
+    """
+    s, r = scale, spacing
+    side = 3 * s + 2 * r
+    impulses = np.eye(side * side, dtype=np.float64).reshape(side * side, side, side)
+    maps = [correlate1d(impulses, taps, axis=axis, mode="constant")[:, r:-r, r:-r]
+            for taps in derivative_taps(spacing) for axis in (2, 1)]
+    raw = np.concatenate([m.reshape(side * side, -1) for m in maps], axis=1)  # (window, raw)
+    return (raw @ basis.astype(np.float64)).T.astype(np.float32)  # (d, window)
+
+
+def window_features(est, kernel, scale, spacing):
+    """Projected features of every patch centre ``-1 .. h`` x ``-1 .. w``: windows times the kernel."""
+    s, r = scale, spacing
+    h, w = est.shape[0] // s, est.shape[1] // s
+    padded = np.pad(est.astype(np.float32), 2 * s + r, mode="symmetric")
+    side = 3 * s + 2 * r
+    windows = sliding_window_view(padded, (side, side))[::s, ::s]  # (h + 2, w + 2, side, side)
+    return windows.reshape((h + 2) * (w + 2), side * side) @ kernel.T, (h + 2, w + 2)
+
+
 def stage2_pairs(stage1, images, scale, spacing, rng):
     """Raw features and residual patches from stage 1's output on the training images."""
     s = scale
@@ -183,12 +210,12 @@ def stage2_pairs(stage1, images, scale, spacing, rng):
     return feats, details
 
 
-def fit_stage2(stage1, images, scale, spacing, seed=0):
+def fit_stage2(stage1, images, scale, spacing, energy, seed=0):
     """Stage 2's arrays: PCA basis, anchors and A+ regressions."""
     rng = np.random.default_rng(seed)
     raw, details = stage2_pairs(stage1, images, scale, spacing, rng)
     r64 = raw.astype(np.float64)
-    basis, _ = pca_basis(r64.T @ r64, STAGE2["energy"])
+    basis, _ = pca_basis(r64.T @ r64, energy)
     basis = basis.astype(np.float32)
     feats = raw @ basis
     dictionary, _ = ksvd(feats.T, STAGE2["n_atoms"], STAGE2["sparsity"], STAGE2["n_iter"],
@@ -201,9 +228,9 @@ def fit_stage2(stage1, images, scale, spacing, seed=0):
 
 def stage2_detail(stage2, est, scale):
     """Stage 2's overlap-averaged correction of a stage-1 estimate."""
-    raw = estimate_features(est, scale, int(stage2["spacing"]))
-    hp, wp = raw.shape[:2]
-    feats = raw.reshape(hp * wp, -1) @ stage2["basis"]
+    spacing = int(stage2["spacing"])
+    kernel = window_kernel(stage2["basis"], scale, spacing)  # cheap; a shipped model would store it
+    feats, (hp, wp) = window_features(est, kernel, scale, spacing)
     patches = apply_projections(feats, nearest_anchors(feats, stage2["dictionary"]),
                                 stage2["projections"])
     return overlap_average(patches.reshape(hp, wp, -1), scale)
@@ -214,15 +241,15 @@ def cascade_magnify(stage1, stage2, lr, scale):
     return est + stage2_detail(stage2, est, scale)
 
 
-def stage2_model(stage1, images, scale, spacing, cache):
+def stage2_model(stage1, images, scale, spacing, energy, cache):
     """Stage 2, trained (or read from the cache) and its training time (None when read)."""
-    path = None if cache is None else Path(cache) / f"cascade-stage2-x{scale}-d{spacing}.npz"
+    path = None if cache is None else Path(cache) / f"cascade-stage2-x{scale}-d{spacing}-e{energy}.npz"
     if path is not None and path.is_file():
         print(f"x{scale}: stage 2 read from {path}", flush=True)
         with np.load(path) as f:
             return dict(f), None
     t0 = time.perf_counter()
-    stage2 = fit_stage2(stage1, images, scale, spacing)
+    stage2 = fit_stage2(stage1, images, scale, spacing, energy)
     seconds = time.perf_counter() - t0
     print(f"x{scale}: stage 2 trained in {seconds:.1f} s on {int(stage2['n_samples'])} pairs, "
           f"{stage2['basis'].shape[1]} features", flush=True)
@@ -237,7 +264,7 @@ def psnr(ref, est, scale):
     return peak_signal_noise_ratio(ref[b, b], np.clip(est, 0, 255)[b, b], data_range=255)
 
 
-def measure(scale, stage1, stage2, spacing):
+def measure(scale, stage1, stage2, variant):
     for name, img in held_out().items():
         hr = crop_to_multiple(img, scale)
         lr = degrade(hr, scale).astype(np.float32)
@@ -252,12 +279,12 @@ def measure(scale, stage1, stage2, spacing):
                value=round(one - bicubic, 3), unit="dB", notes=f"PSNR {one:.2f} dB", **ref)
         result("cascade", metric=f"PSNR gain over bicubic, {name}, x{scale}, stages 1 + 2",
                value=round(two - bicubic, 3), unit="dB",
-               notes=f"PSNR {two:.2f} dB; stage 2 adds {two - one:+.3f} dB; spacing {spacing}",
+               notes=f"PSNR {two:.2f} dB; stage 2 adds {two - one:+.3f} dB; {variant}",
                **ref)
         result("cascade", metric=f"magnification time, {name}, x{scale}, stages 1 + 2",
                value=round(t2, 3), unit="s", reference="stage 1 alone, same image",
                reference_value=round(t1, 3), ratio=round(t2 / t1, 2),
-               notes=f"low-res {lr.shape[0]} x {lr.shape[1]}, best of 5")
+               notes=f"low-res {lr.shape[0]} x {lr.shape[1]}, best of 5; {variant}")
 
 
 def main():
@@ -265,18 +292,20 @@ def main():
     parser.add_argument("--scales", type=int, nargs="+", default=[3])
     parser.add_argument("--cache", help="directory keeping the trained stages between runs")
     parser.add_argument("--spacing", type=int, help="derivative tap spacing of stage 2 (default: scale)")
+    parser.add_argument("--energy", type=float, default=STAGE2["energy"],
+                        help="PCA energy kept by stage 2's features")
     args = parser.parse_args()
     images = training_images()
     for scale in args.scales:
         spacing = args.spacing or scale
         stage1, t_fit1 = stage1_model(scale, images, args.cache)
-        stage2, t_fit2 = stage2_model(stage1, images, scale, spacing, args.cache)
+        stage2, t_fit2 = stage2_model(stage1, images, scale, spacing, args.energy, args.cache)
         if t_fit2 is not None:
             result("cascade", metric=f"stage 2 training time, x{scale}", value=round(t_fit2, 1),
                    unit="s", reference="stage 1 training time",
                    reference_value=None if t_fit1 is None else round(t_fit1, 1),
                    notes=f"{int(stage2['n_samples'])} pairs, {stage2['basis'].shape[1]} features")
-        measure(scale, stage1, stage2, spacing)
+        measure(scale, stage1, stage2, f"spacing {spacing}, {stage2['basis'].shape[1]} features")
 
 
 if __name__ == "__main__":
