@@ -1,7 +1,9 @@
 """Helpers shared by the benchmark scripts (not a benchmark itself)."""
 
 import json
+import subprocess
 import time
+from pathlib import Path
 
 import numpy as np
 
@@ -50,3 +52,31 @@ def best_of(fn, repeat):
         fn()
         times.append(time.perf_counter() - t0)
     return min(times)
+
+
+#: The commit whose shipped anchored models were the previous ones (512 anchors).
+OLD_MODELS_REF = "fab1e1c"
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def extract_old_models(ref, scales, folder):
+    """Write the anchored models shipped at git ``ref`` into ``folder``: {scale: path}, and reasons."""
+    paths, reasons = {}, []
+    for scale in scales:
+        for name in (f"default-x{scale}.npz", f"anchored-x{scale}.npz"):
+            try:
+                proc = subprocess.run(["git", "-C", str(ROOT), "show", f"{ref}:geosr/models/{name}"],
+                                      capture_output=True, check=False)
+            except OSError as exc:
+                return {}, [f"git is unavailable ({exc})"]
+            if proc.returncode == 0:
+                path = Path(folder) / name
+                path.write_bytes(proc.stdout)
+                paths[scale] = path
+                break
+        else:
+            err = proc.stderr.decode(errors="replace").strip().splitlines()
+            reasons.append(f"x{scale}: git show {ref}:geosr/models/default-x{scale}.npz failed"
+                           + (f" ({err[0]})" if err else ""))
+    return paths, reasons

@@ -82,7 +82,6 @@ from __future__ import annotations
 import argparse
 import os
 import re
-import subprocess
 import sys
 import tempfile
 import time
@@ -100,7 +99,7 @@ from geosr.errors import GeosrError
 from geosr.modelfile import default_model
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _common import best_of, result  # noqa: E402
+from _common import OLD_MODELS_REF, best_of, extract_old_models, result  # noqa: E402
 
 NAME = "quality"
 ROOT = Path(__file__).resolve().parents[1]
@@ -276,28 +275,6 @@ def references(scale, args, shared):
 
 
 # --------------------------------------------------------------------- models
-def extract_old_models(ref, scales, folder):
-    """Write the anchored models shipped at git ``ref`` into ``folder``: {scale: path}, and reasons."""
-    paths, reasons = {}, []
-    for scale in scales:
-        for name in (f"default-x{scale}.npz", f"anchored-x{scale}.npz"):
-            try:
-                proc = subprocess.run(["git", "-C", str(ROOT), "show", f"{ref}:geosr/models/{name}"],
-                                      capture_output=True, check=False)
-            except OSError as exc:
-                return {}, [f"git is unavailable ({exc})"]
-            if proc.returncode == 0:
-                path = Path(folder) / name
-                path.write_bytes(proc.stdout)
-                paths[scale] = path
-                break
-        else:
-            err = proc.stderr.decode(errors="replace").strip().splitlines()
-            reasons.append(f"x{scale}: git show {ref}:geosr/models/default-x{scale}.npz failed"
-                           + (f" ({err[0]})" if err else ""))
-    return paths, reasons
-
-
 def load_photo(name):
     img = getattr(data, name)()
     if img.ndim == 3:
@@ -477,7 +454,7 @@ def parse_args(argv=None):
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true", help="small crops: a smoke run, not the figures")
     p.add_argument("--scales", type=int, nargs="+", default=[2, 3, 4], choices=[2, 3, 4])
-    p.add_argument("--old-ref", default="fab1e1c", help="git ref of the old shipped anchored models")
+    p.add_argument("--old-ref", default=OLD_MODELS_REF, help="git ref of the old shipped anchored models")
     p.add_argument("--train-sparse", action="store_true",
                    help="also train today's bench sparse rows (previous training photos, 512 atoms)")
     p.add_argument("--landsat8-crop", type=int, default=0, metavar="N",

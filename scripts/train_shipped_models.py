@@ -67,7 +67,7 @@ LEFT_OUT = {
 SETTINGS = {
     "anchored": dict(n_atoms=1024, sparsity=3, n_iter=10, max_samples=2_000_000, neighbours=2048,
                      ridge=0.1, rescaled_copies=12, random_state=0),
-    "sparse": dict(n_atoms=1024, sparsity=3, n_iter=10, max_samples=1_000_000, high_fit="patch",
+    "sparse": dict(n_atoms=1024, sparsity=3, n_iter=10, max_samples=1_000_000, high_fit="image",
                    rescaled_copies=12, random_state=0),
 }
 

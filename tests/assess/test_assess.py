@@ -235,7 +235,7 @@ def test_landsat_sam_no_worse_than_bicubic(landsat):
 @pytest.fixture(scope="module", params=[2, 3], ids=["x2", "x3"])
 def held_out_photo(request, tmp_path_factory):
     """scikit-image's astronaut photo (NASA, public domain), not in the training
-    list of scripts/train_default_models.py, assessed with and without the guard."""
+    list of scripts/train_shipped_models.py, assessed with and without the guard."""
     skimage_data = pytest.importorskip("skimage.data")
     scale = request.param
     rgb = np.moveaxis(skimage_data.astronaut(), -1, 0)[:, :384, :384].copy()
