@@ -111,7 +111,7 @@ GROUPED_SEARCH_ATOMS = 1024
 
 #: Groups probed per feature by the two-level search. With 64 groups of a
 #: 1024-atom dictionary, 6 probes found the exhaustive anchor for 95 % of
-#: the features of a held-out photo and cost under 0.003 dB (docs/decisions.md).
+#: the features of a held-out photo and cost at most 0.011 dB (docs/decisions.md).
 PROBED_GROUPS = 6
 
 
