@@ -3,6 +3,7 @@
     .venv/bin/python benchmarks/run_all.py                 # all of them (make bench)
     .venv/bin/python benchmarks/run_all.py -k sparse       # those whose name contains "sparse"
     .venv/bin/python benchmarks/run_all.py --quick         # pass --quick to each script
+    .venv/bin/python benchmarks/run_all.py -k bench_quality --script-args=--train-sparse
 
 Convention for benchmark authors
 --------------------------------
@@ -35,6 +36,7 @@ import datetime as _dt
 import json
 import os
 import platform
+import shlex
 import subprocess
 import sys
 import time
@@ -118,8 +120,8 @@ def machine_info():
     return info
 
 
-def run_script(path, quick, timeout):
-    cmd = [sys.executable, str(path)] + (["--quick"] if quick else [])
+def run_script(path, quick, timeout, extra=()):
+    cmd = [sys.executable, str(path)] + (["--quick"] if quick else []) + list(extra)
     t0 = time.perf_counter()
     try:
         proc = subprocess.run(cmd, cwd=ROOT, capture_output=True, text=True, timeout=timeout)
@@ -182,6 +184,8 @@ def main(argv=None):
     p.add_argument("--quick", action="store_true", help="pass --quick to every script")
     p.add_argument("--output", default=str(ROOT / "BENCHMARKS.md"))
     p.add_argument("--timeout", type=float, default=3600.0, help="seconds per script")
+    p.add_argument("--script-args", default="", help="more arguments for every script, one string "
+                   "(e.g. -k bench_quality --script-args=--train-sparse)")
     args = p.parse_args(argv)
 
     scripts = sorted(s for s in HERE.glob("bench_*.py") if args.pattern in s.name)
@@ -191,7 +195,7 @@ def main(argv=None):
     runs = []
     for script in scripts:
         print(f"== {script.name}", flush=True)
-        rc, out, err, seconds = run_script(script, args.quick, args.timeout)
+        rc, out, err, seconds = run_script(script, args.quick, args.timeout, shlex.split(args.script_args))
         sys.stdout.write(out)
         if rc != 0:
             sys.stdout.write(err)
