@@ -33,7 +33,7 @@ from skimage.metrics import peak_signal_noise_ratio
 import geosr
 from geosr.core.model import CoupledDictionary
 from geosr.core.resample import crop_to_multiple, degrade
-from geosr.modelfile import default_model_path, half_precision, load_models
+from geosr.modelfile import default_model_path, half_precision, load_models, save_models
 
 #: name -> (package, licence as the package states it, why it is in the set).
 TRAINING_PHOTOS = {
@@ -146,10 +146,17 @@ def main() -> None:
     parser.add_argument("--methods", nargs="+", default=["anchored", "sparse"], choices=sorted(SETTINGS))
     parser.add_argument("--scales", type=int, nargs="+", default=[2, 3, 4])
     parser.add_argument("--out", type=Path, default=None,
-                        help="folder for the model files (default: the package's geosr/models)")
+                        help="folder for new model files, never overwritten (default: replace the "
+                             "package's geosr/models files)")
     parser.add_argument("--check", action="store_true",
                         help="retrain and compare each checksum with the shipped file; write nothing")
     args = parser.parse_args()
+    if args.out is not None and not args.check:
+        taken = [f"{m}-x{s}.npz" for m in args.methods for s in args.scales
+                 if (args.out / f"{m}-x{s}.npz").exists()]
+        if taken:
+            raise SystemExit(f"train_shipped_models: error: {args.out} already holds {', '.join(taken)}; "
+                             "choose an empty folder")
     photos = [copy for name in TRAINING_PHOTOS for copy in dihedral_copies(load_photo(name))]
     failed = []
     for method in args.methods:
@@ -161,8 +168,10 @@ def main() -> None:
                 print(f"{method} x{scale}: sha256 {model.sha256_} {'matches' if same else 'DIFFERS from'} {shipped}")
                 failed += [] if same else [shipped.name]
                 continue
+            # The package's own files are meant to be replaced; a file in a folder given
+            # with --out is never overwritten (save_models refuses it, one line).
             path = (args.out or shipped.parent) / shipped.name
-            model.save(path)
+            save_models(path, [model], overwrite=args.out is None)
             print(f"{method} x{scale}: sha256 {model.sha256_}, {path.stat().st_size / 1e6:.1f} MB -> {path}")
     if failed:
         raise SystemExit(f"not reproduced: {', '.join(failed)}")
