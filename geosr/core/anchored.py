@@ -171,16 +171,18 @@ def anchor_groups(dictionary_low: np.ndarray, n_groups: int | None = None, n_ite
     k = len(atoms)
     g = max(1, min(k, int(round(2 * math.sqrt(k))) if n_groups is None else int(n_groups)))
     centres = atoms[np.sort(np.random.default_rng(0).choice(k, size=g, replace=False))].copy()
-    for _ in range(n_iter):
-        corr = atoms @ centres.T  # (k, g)
-        label = np.argmax(np.abs(corr), axis=1)
-        signed = atoms * np.sign(corr[np.arange(k), label])[:, None]
-        sums = np.zeros_like(centres)
-        np.add.at(sums, label, signed)
-        norms = np.linalg.norm(sums, axis=1)
-        used = norms > 0
-        centres[used] = sums[used] / norms[used, None]
-    label = np.argmax(np.abs(atoms @ centres.T), axis=1)
+    # One BLAS thread: the same groups in every thread, process and worker.
+    with one_blas_thread():
+        for _ in range(n_iter):
+            corr = atoms @ centres.T  # (k, g)
+            label = np.argmax(np.abs(corr), axis=1)
+            signed = atoms * np.sign(corr[np.arange(k), label])[:, None]
+            sums = np.zeros_like(centres)
+            np.add.at(sums, label, signed)
+            norms = np.linalg.norm(sums, axis=1)
+            used = norms > 0
+            centres[used] = sums[used] / norms[used, None]
+        label = np.argmax(np.abs(atoms @ centres.T), axis=1)
     members = np.argsort(label, kind="stable").astype(np.int64)
     bounds = np.searchsorted(label[members], np.arange(g + 1)).astype(np.int64)
     return AnchorGroups(centres, members, bounds, np.ascontiguousarray(atoms[members]))
