@@ -321,15 +321,19 @@ def _client_for(spec):
         yield spec.client
         return
     if spec.kind == "local-cluster":
-        cluster = LocalCluster(
-            n_workers=spec.workers,
-            threads_per_worker=1,
-            processes=True,
-            host="127.0.0.1",
-            dashboard_address=None,
-            silence_logs=logging.CRITICAL,
-            preload=[_quiet_worker.__name__],  # workers leave Ctrl-C to this process
-        )
+        with warnings.catch_warnings():
+            # The scheduler's HTTP server moves to a free port when 8787 is taken (a
+            # user's own dask cluster); geosr shows no dashboard, so that is no news.
+            warnings.filterwarnings("ignore", message=r"Port \d+ is already in use")
+            cluster = LocalCluster(
+                n_workers=spec.workers,
+                threads_per_worker=1,
+                processes=True,
+                host="127.0.0.1",
+                dashboard_address=None,
+                silence_logs=logging.CRITICAL,
+                preload=[_quiet_worker.__name__],  # workers leave Ctrl-C to this process
+            )
         try:
             client = Client(cluster)
             try:

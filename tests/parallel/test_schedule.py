@@ -223,3 +223,24 @@ def test_cluster_preload_ignores_sigint_in_the_main_thread_only():
         assert signal.getsignal(signal.SIGINT) == signal.SIG_IGN
     finally:
         signal.signal(signal.SIGINT, previous)
+
+
+def test_local_cluster_says_nothing_when_the_dashboard_port_is_taken(recwarn):
+    # A user's own dask cluster usually holds 8787 (distributed's default HTTP port);
+    # geosr shows no dashboard, so the move to another port must not reach the user.
+    import socket
+
+    holder = socket.socket()
+    try:
+        holder.bind(("127.0.0.1", 8787))
+    except OSError:
+        pass  # already taken: the situation this test is about
+    else:
+        holder.listen()
+    try:
+        got = []
+        run_tasks(square, range(3), {"offset": 0}, got.append, workers=2)
+    finally:
+        holder.close()
+    assert sorted(got) == [(0, 0), (1, 1), (2, 4)]
+    assert not [w for w in recwarn if "already in use" in str(w.message)]
